@@ -44,6 +44,7 @@ __all__ = [
     "NEAR_COPY",
     "REMOVED_STATUSES",
     "empty_batch",
+    "REASONS",
 ]
 
 KEPT = "kept"
@@ -54,6 +55,42 @@ NEAR_COPY = "near_copy"
 
 STATUSES = (KEPT, REJECTED, EMPTY, EXACT_COPY, NEAR_COPY)
 REMOVED_STATUSES = (EMPTY, EXACT_COPY, NEAR_COPY)
+
+# Reasons, the first word of ``reason`` (detail may follow after ": ").
+# Reader rejections (status "rejected"):
+#   binary_file          NUL bytes in a file not marked as UTF-16/32 by its BOM
+#   undecodable          neither UTF-8 nor the fallback encoding decodes the bytes
+#   unreadable           the operating system refused to read the file
+#   too_large            the file or decompressed stream exceeds the definition's limit
+#   unsupported_format   the file matched the include globs but no reader knows its format
+#   link_outside_input   a symbolic link that leads outside the input folder (not followed)
+#   link_loop            a symbolic link cycle
+#   invalid_json         a JSON line or JSON file that does not parse
+#   not_an_object        a JSON record that is not an object
+#   missing_text_field   the record has no text field (or column)
+#   text_not_string      the text field is not a string
+#   csv_column_count     a CSV row whose number of fields differs from the header's
+# Removals:
+#   empty_after_clean    status "empty": nothing but whitespace left after cleaning
+#   exact_copy           status "exact_copy": same exact key as an earlier document
+#   near_copy            status "near_copy": in a near-duplicate cluster, not its representative
+REASONS = (
+    "binary_file",
+    "undecodable",
+    "unreadable",
+    "too_large",
+    "unsupported_format",
+    "link_outside_input",
+    "link_loop",
+    "invalid_json",
+    "not_an_object",
+    "missing_text_field",
+    "text_not_string",
+    "csv_column_count",
+    "empty_after_clean",
+    "exact_copy",
+    "near_copy",
+)
 
 DOC_SCHEMA = pa.schema(
     [
