@@ -1,0 +1,138 @@
+"""The ``corpusprep`` command line: parse, call the library, print.
+
+Exit codes (also in the README):
+
+====  =====================================================
+0     success
+1     the run failed (input, output, integrity, internal error)
+2     bad usage or an invalid pipeline definition
+3     ``audit`` found leakage between splits or with an outside set
+4     ``audit`` found the output damaged (missing or altered files, counts)
+130   interrupted (Ctrl-C)
+====  =====================================================
+
+Heavy imports happen inside the commands so ``--help`` is instant.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+import traceback
+from collections.abc import Callable
+from pathlib import Path
+from typing import Annotated, Any, NoReturn, TypeVar
+
+import typer
+
+__all__ = ["EXIT_DAMAGED", "EXIT_FAILED", "EXIT_INTERRUPTED", "EXIT_LEAKAGE", "EXIT_OK", "EXIT_USAGE", "app", "main"]
+
+EXIT_OK = 0
+EXIT_FAILED = 1
+EXIT_USAGE = 2
+EXIT_LEAKAGE = 3
+EXIT_DAMAGED = 4
+EXIT_INTERRUPTED = 130
+
+app = typer.Typer(
+    name="corpusprep",
+    help="Turn a raw folder of text into leak-free next-token training windows, and check such outputs.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+T = TypeVar("T")
+
+DebugOption = Annotated[bool, typer.Option("--debug", help="Show the full traceback of an error.")]
+
+
+def _fail(message: str, code: int) -> NoReturn:
+    typer.echo(f"corpusprep: error: {message}", err=True)
+    raise typer.Exit(code)
+
+
+def _guard(debug: bool, action: Callable[[], T]) -> T:
+    """Run ``action``, turning errors into one paragraph on stderr and an exit code."""
+    from corpusprep.errors import CorpusprepError, DefinitionError
+
+    try:
+        return action()
+    except typer.Exit:
+        raise
+    except KeyboardInterrupt:
+        typer.echo("corpusprep: interrupted", err=True)
+        raise typer.Exit(EXIT_INTERRUPTED) from None
+    except DefinitionError as error:
+        if debug:
+            traceback.print_exc()
+        _fail(str(error), EXIT_USAGE)
+    except CorpusprepError as error:
+        if debug:
+            traceback.print_exc()
+        _fail(str(error), EXIT_FAILED)
+    except Exception as error:
+        if debug:
+            traceback.print_exc()
+        _fail(f"unexpected {type(error).__name__}: {error} (run again with --debug for the traceback)", EXIT_FAILED)
+
+
+def _default_workers() -> int:
+    return max(1, min(os.cpu_count() or 1, 8))
+
+
+@app.command()
+def check(
+    pipeline: Annotated[Path, typer.Argument(help="Pipeline definition (TOML).")],
+    debug: DebugOption = False,
+) -> None:
+    """Validate a pipeline definition without running it."""
+
+    def action() -> None:
+        from corpusprep.definition import load_definition
+
+        definition = load_definition(pipeline)
+        typer.echo(f"{pipeline}: valid (definition hash {definition.digest()})")
+        typer.echo(f"  input:  {definition.input or '(not set: pass --input)'}")
+        typer.echo(f"  output: {definition.output or '(not set: pass --output)'}")
+
+    _guard(debug, action)
+
+
+@app.command()
+def run(
+    pipeline: Annotated[Path, typer.Argument(help="Pipeline definition (TOML).")],
+    input: Annotated[Path | None, typer.Option("--input", help="Read this folder instead of the definition's.")] = None,
+    output: Annotated[
+        Path | None, typer.Option("--output", help="Write this folder instead of the definition's.")
+    ] = None,
+    workers: Annotated[
+        int, typer.Option("--workers", min=1, help="Worker processes (output is identical for any number).")
+    ] = _default_workers(),
+    force: Annotated[bool, typer.Option("--force", help="Replace a non-empty output folder.")] = False,
+    quiet: Annotated[bool, typer.Option("--quiet", help="No progress bars and no summary.")] = False,
+    debug: DebugOption = False,
+) -> None:
+    """Run a pipeline definition on a raw folder and write shards, ledger and manifest."""
+
+    def action() -> None:
+        from corpusprep.definition import load_definition
+        from corpusprep.pipeline import run_pipeline
+        from corpusprep.summary import print_summary, progress_printer
+
+        definition = load_definition(pipeline).with_folders(input=input, output=output)
+        with progress_printer(enabled=not quiet) as progress:
+            result = run_pipeline(definition, workers=workers, force=force, progress=progress)
+        if not quiet:
+            print_summary(result.manifest, result.output)
+
+    _guard(debug, action)
+
+
+def main(argv: list[str] | None = None) -> Any:
+    """Console-script entry point."""
+    try:
+        return app(args=argv, prog_name="corpusprep")
+    except KeyboardInterrupt:
+        typer.echo("corpusprep: interrupted", err=True)
+        sys.exit(EXIT_INTERRUPTED)

@@ -1,0 +1,511 @@
+"""The whole job: read, clean, exact, near, split, tokenize, pack, ledger, manifest.
+
+Per-batch stages run through :func:`corpusprep.pool.ordered_map`; the
+global steps (exact duplicates, near-duplicate clusters, split, tokenizer
+and packing) are barriers between them. Between the two passes over the
+corpus the cleaned documents live in an Arrow IPC file in the run's work
+folder, so memory is bounded by the batch size plus a few fixed-width
+arrays per document (keys, status, offsets), never by the text.
+
+A run writes into a hidden sibling of the output folder and publishes it by
+renaming once the manifest, written last, is in place.
+"""
+
+from __future__ import annotations
+
+import functools
+import json
+import os
+import shutil
+from collections import Counter
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from corpusprep import __version__
+from corpusprep.clean import CleanConfig, clean_batch
+from corpusprep.definition import Definition
+from corpusprep.errors import InputError, IntegrityError, OutputExistsError, TooManyRejectedError
+from corpusprep.exact import ExactConfig, exact_keys, first_occurrences
+from corpusprep.hashing import hash_file, hash_text
+from corpusprep.ledger import LEDGER_FILE, write_ledger
+from corpusprep.manifest import MANIFEST_FILE, SCHEMA_VERSION, write_json_atomic
+from corpusprep.near import NearConfig, find_clusters, signature_batch
+from corpusprep.pack import document_order, pack_split, smallest_dtype
+from corpusprep.pool import ordered_map
+from corpusprep.read import InputFile, read_folder
+from corpusprep.schema import DOC_SCHEMA, EMPTY, EXACT_COPY, KEPT, NEAR_COPY, REJECTED, STATUSES
+from corpusprep.split import SPLITS, assign_splits, components
+from corpusprep.tokens import Tokenizer, build_tokenizer
+
+__all__ = ["ProgressCallback", "RunResult", "run_pipeline"]
+
+#: ``callback(stage, done, total)``: ``done`` units of ``stage`` are finished; ``total`` may be unknown.
+ProgressCallback = Callable[[str, int, "int | None"], None]
+
+SHARD_FOLDER = "shards"
+TOKENIZER_FILE = "tokenizer.json"
+_STATUS_CODE = {status: code for code, status in enumerate(STATUSES)}
+_WORK = ".work"
+
+
+@dataclass(frozen=True, slots=True)
+class RunResult:
+    """What a finished run produced."""
+
+    output: Path
+    manifest: dict[str, Any]
+
+
+@dataclass(slots=True)
+class _Prepared:
+    """One batch after the first pass: cleaned rows plus per-row fixed-width data."""
+
+    batch: pa.RecordBatch
+    text_hashes: np.ndarray  # (rows, 2) uint64, zero for rows not kept
+    exact_keys: np.ndarray  # (rows, 2) uint64
+    signatures: np.ndarray | None  # (rows, permutations), rows not kept are zero
+    counts: dict[str, Counter[str]] = field(default_factory=dict)
+
+
+def _prepare(batch: pa.RecordBatch, clean: CleanConfig, exact: ExactConfig, near: NearConfig) -> _Prepared:
+    """First-pass work on one batch (runs in a worker process)."""
+    cleaned, clean_counts = clean_batch(batch, clean)
+    status = cleaned.column("status").to_pylist()
+    texts = [text if state == KEPT else None for text, state in zip(cleaned.column("text").to_pylist(), status, strict=True)]
+    text_hashes = exact_keys(texts, ExactConfig(key="text"))
+    keys = text_hashes if exact.key == "text" else exact_keys(texts, exact)
+    signatures = None
+    near_counts: dict[str, int] = {}
+    if near.enabled:
+        signatures, near_counts = signature_batch(cleaned, near)
+    return _Prepared(
+        batch=cleaned,
+        text_hashes=text_hashes,
+        exact_keys=keys,
+        signatures=signatures,
+        counts={"clean": Counter(clean_counts), "near": Counter(near_counts)},
+    )
+
+
+def _encode(tokenizer: Tokenizer, texts: list[str]) -> list[np.ndarray]:
+    return tokenizer.encode_batch(texts)
+
+
+def _hex(pair: np.ndarray) -> str:
+    return f"{int(pair[0]):016x}{int(pair[1]):016x}"
+
+
+def _publish(partial: Path, output: Path) -> None:
+    """Replace ``output`` by ``partial`` with renames; an old output is removed only after."""
+    old = None
+    if output.exists():
+        if output.is_dir() and not any(output.iterdir()):
+            output.rmdir()
+        else:
+            old = output.with_name(f".{output.name}.old-{os.getpid()}")
+            output.rename(old)
+    partial.rename(output)
+    if old is not None:
+        shutil.rmtree(old, ignore_errors=True)
+
+
+def _check_output(output: Path, force: bool) -> None:
+    if output.exists() and not output.is_dir():
+        raise OutputExistsError(f"{output}: the output path exists and is not a folder")
+    if output.is_dir() and any(output.iterdir()) and not force:
+        raise OutputExistsError(
+            f"{output}: the output folder is not empty; choose another folder or pass --force to replace it"
+        )
+
+
+class _Run:
+    """State of one run; every method is one step of :func:`run_pipeline`."""
+
+    def __init__(self, definition: Definition, workers: int, progress: ProgressCallback | None) -> None:
+        assert definition.input is not None and definition.output is not None
+        self.definition = definition
+        self.input: Path = definition.input
+        self.output: Path = definition.output
+        self.workers = workers
+        self.progress = progress or (lambda stage, done, total: None)
+        self.partial = self.output.with_name(f".{self.output.name}.partial-{os.getpid()}")
+        self.work = self.partial / _WORK
+        self.stages: dict[str, dict[str, Any]] = {}
+        self.inputs: list[InputFile] = []
+
+    # ------------------------------------------------------------------ pass 1
+    def first_pass(self) -> None:
+        definition = self.definition
+        prepare = functools.partial(_prepare, clean=definition.clean, exact=definition.exact, near=definition.near)
+        batches: Iterator[pa.RecordBatch] = self._read_batches()
+        statuses: list[np.ndarray] = []
+        text_hashes: list[np.ndarray] = []
+        keys: list[np.ndarray] = []
+        groups: list[str | None] = []
+        counts: dict[str, Counter[str]] = {"clean": Counter(), "near": Counter()}
+        reasons: Counter[str] = Counter()
+        examples: list[str] = []
+        self.signature_path = self.work / "signatures.npy"
+        signature_chunks = 0
+        rows = 0
+        with (
+            pa.OSFile(str(self.work / "documents.arrow"), "wb") as sink,
+            pa.ipc.new_file(sink, DOC_SCHEMA) as writer,
+            open(self.work / "signatures.raw", "wb") as signature_file,
+        ):
+            for prepared in ordered_map(prepare, batches, workers=self.workers):
+                batch = prepared.batch
+                writer.write_batch(batch)
+                status = batch.column("status").to_pylist()
+                statuses.append(np.array([_STATUS_CODE[s] for s in status], dtype=np.int8))
+                text_hashes.append(prepared.text_hashes)
+                keys.append(prepared.exact_keys)
+                groups.extend(batch.column("group").to_pylist())
+                for name, counter in prepared.counts.items():
+                    counts[name].update(counter)
+                if prepared.signatures is not None:
+                    self.signature_dtype = prepared.signatures.dtype
+                    self.permutations = prepared.signatures.shape[1]
+                    signature_file.write(np.ascontiguousarray(prepared.signatures).tobytes())
+                    signature_chunks += 1
+                for state, reason, source, line in zip(
+                    status,
+                    batch.column("reason").to_pylist(),
+                    batch.column("source").to_pylist(),
+                    batch.column("line").to_pylist(),
+                    strict=True,
+                ):
+                    if state == REJECTED:
+                        reasons[reason.split(":")[0]] += 1
+                        if len(examples) < 5:
+                            examples.append(f"{source}:{line if line is not None else '-'}: {reason}")
+                rows += batch.num_rows
+                self.progress("read", rows, None)
+        self.rows = rows
+        self.status = np.concatenate(statuses) if statuses else np.zeros(0, dtype=np.int8)
+        self.text_hashes = np.concatenate(text_hashes) if text_hashes else np.zeros((0, 2), dtype=np.uint64)
+        self.keys = np.concatenate(keys) if keys else np.zeros((0, 2), dtype=np.uint64)
+        self.groups = groups
+        self.has_signatures = signature_chunks > 0
+        rejected = int(np.count_nonzero(self.status == _STATUS_CODE[REJECTED]))
+        formats = Counter(item.format for item in self.inputs)
+        encodings = Counter(item.encoding for item in self.inputs if item.encoding)
+        self.stages["read"] = {
+            "files": len(self.inputs),
+            "bytes": sum(item.size for item in self.inputs),
+            "records": rows,
+            "rejected": rejected,
+            "rejected_by_reason": dict(sorted(reasons.items())),
+            "files_by_format": dict(sorted(formats.items())),
+            "files_by_encoding": dict(sorted(encodings.items())),
+        }
+        self.stages["clean"] = dict(sorted(counts["clean"].items()))
+        self.near_counts = dict(sorted(counts["near"].items()))
+        limit = self.definition.read.max_rejected_fraction
+        if rows and rejected / rows > limit:
+            raise TooManyRejectedError(
+                f"{rejected} of {rows} input records were rejected ({rejected / rows:.1%}), more than "
+                f"read.max_rejected_fraction = {limit:g} allows. First rejections: " + "; ".join(examples)
+                + ". Fix the input or raise read.max_rejected_fraction."
+            )
+
+    def _read_batches(self) -> Iterator[pa.RecordBatch]:
+        for item in read_folder(self.input, self.definition.read):
+            if isinstance(item, InputFile):
+                self.inputs.append(item)
+            else:
+                yield item
+
+    # ------------------------------------------------------------------ barriers
+    def exact_step(self) -> None:
+        self.duplicate_of = np.full(self.rows, -1, dtype=np.int64)
+        copies = 0
+        if self.definition.exact.enabled:
+            first = first_occurrences(self.keys, self.status == _STATUS_CODE[KEPT])
+            is_copy = first >= 0
+            self.status[is_copy] = _STATUS_CODE[EXACT_COPY]
+            self.duplicate_of[is_copy] = first[is_copy]
+            copies = int(np.count_nonzero(is_copy))
+        self.stages["exact"] = {"key": self.definition.exact.key, "exact_copy": copies}
+
+    def near_step(self) -> None:
+        self.cluster_of = np.full(self.rows, -1, dtype=np.int64)
+        self.similarity = np.full(self.rows, np.nan, dtype=np.float64)
+        near = self.definition.near
+        if not near.enabled or not self.has_signatures:
+            self.stages["near"] = {"enabled": False}
+            return
+        kept = np.flatnonzero(self.status == _STATUS_CODE[KEPT])
+        raw = np.memmap(self.work / "signatures.raw", dtype=self.signature_dtype, mode="r")
+        signatures = raw.reshape(-1, self.permutations)[kept]
+        result = find_clusters(signatures, near)
+        del raw
+        in_cluster = result.cluster != np.arange(len(kept))
+        members = np.flatnonzero((result.cluster >= 0) & (self._cluster_sizes(result.cluster) > 1))
+        self.cluster_of[kept[members]] = kept[result.cluster[members]]
+        copies = np.flatnonzero(result.near_copy_of >= 0)
+        self.similarity[kept[copies]] = result.similarity[copies]
+        if near.action == "remove":
+            self.status[kept[copies]] = _STATUS_CODE[NEAR_COPY]
+            self.duplicate_of[kept[copies]] = kept[result.near_copy_of[copies]]
+        report = dict(self.near_counts)
+        report.update(result.report)
+        report["near_copy_removed"] = int(len(copies)) if near.action == "remove" else 0
+        report["documents_joined"] = int(np.count_nonzero(in_cluster))
+        self.stages["near"] = report
+
+    @staticmethod
+    def _cluster_sizes(cluster: np.ndarray) -> np.ndarray:
+        sizes = np.bincount(cluster[cluster >= 0], minlength=len(cluster))
+        return sizes[np.maximum(cluster, 0)]
+
+    def split_step(self) -> None:
+        kept = np.flatnonzero(self.status == _STATUS_CODE[KEPT])
+        position = np.full(self.rows, -1, dtype=np.int64)
+        position[kept] = np.arange(len(kept))
+        edges: list[tuple[np.ndarray, np.ndarray]] = []
+        clustered = kept[self.cluster_of[kept] >= 0]
+        if len(clustered):
+            representatives = position[self.cluster_of[clustered]]
+            ok = representatives >= 0
+            edges.append((position[clustered][ok], representatives[ok]))
+        first_of_group: dict[str, int] = {}
+        group_left, group_right = [], []
+        member_keys: list[str] = []
+        for index, row in enumerate(kept.tolist()):
+            group = self.groups[row]
+            if group is not None:
+                member_keys.append("g:" + group)
+                first = first_of_group.setdefault(group, index)
+                if first != index:
+                    group_left.append(index)
+                    group_right.append(first)
+            else:
+                member_keys.append("h:" + _hex(self.text_hashes[row]))
+        if group_left:
+            edges.append((np.array(group_left, dtype=np.int64), np.array(group_right, dtype=np.int64)))
+        component_of = components(len(kept), edges)
+        splits = assign_splits(member_keys, component_of, self.definition.split)
+        self.split_of: list[str | None] = [None] * self.rows
+        for row, split in zip(kept.tolist(), splits, strict=True):
+            self.split_of[row] = split
+        documents = Counter(splits)
+        self.stages["split"] = {
+            "components": int(len(np.unique(component_of))) if len(kept) else 0,
+            "documents": {name: documents.get(name, 0) for name in SPLITS},
+            "fractions": {name: (documents.get(name, 0) / len(kept) if len(kept) else 0.0) for name in SPLITS},
+        }
+
+    # ------------------------------------------------------------------ pass 2
+    def tokenize_step(self) -> None:
+        definition = self.definition
+        self.tokenizer = build_tokenizer(definition.tokenizer)
+        self.dtype = smallest_dtype(self.tokenizer.vocab_size)
+        self.token_count = np.full(self.rows, -1, dtype=np.int64)
+        offsets: dict[str, list[int]] = {name: [] for name in SPLITS}
+        lengths: dict[str, list[int]] = {name: [] for name in SPLITS}
+        written = dict.fromkeys(SPLITS, 0)
+        encode = functools.partial(_encode, self.tokenizer)
+        row_lists: list[list[int]] = []
+
+        def kept_texts() -> Iterator[list[str]]:
+            start = 0
+            with pa.memory_map(str(self.work / "documents.arrow")) as source:
+                reader = pa.ipc.open_file(source)
+                for index in range(reader.num_record_batches):
+                    batch = reader.get_batch(index)
+                    rows = [start + i for i in range(batch.num_rows) if self.split_of[start + i] is not None]
+                    texts = batch.column("text").take(pa.array([r - start for r in rows], type=pa.int64()))
+                    row_lists.append(rows)
+                    start += batch.num_rows
+                    yield texts.to_pylist()
+
+        files = {name: open(self.work / f"tokens-{name}.raw", "wb") for name in SPLITS}
+        try:
+            done = 0
+            for batch_index, encoded in enumerate(ordered_map(encode, kept_texts(), workers=self.workers)):
+                for row, ids in zip(row_lists[batch_index], encoded, strict=True):
+                    split = self.split_of[row]
+                    assert split is not None
+                    data = np.asarray(ids).astype(self.dtype, copy=False)
+                    files[split].write(data.tobytes())
+                    offsets[split].append(written[split])
+                    lengths[split].append(len(data))
+                    written[split] += len(data)
+                    self.token_count[row] = len(data)
+                done += len(row_lists[batch_index])
+                row_lists[batch_index] = []
+                self.progress("tokenize", done, None)
+        finally:
+            for handle in files.values():
+                handle.close()
+        self.offsets = {name: np.array(offsets[name], dtype=np.int64) for name in SPLITS}
+        self.lengths = {name: np.array(lengths[name], dtype=np.int64) for name in SPLITS}
+        self.stages["tokenize"] = {
+            "kind": self.tokenizer.kind,
+            "documents": int(sum(len(v) for v in offsets.values())),
+            "tokens": int(sum(written.values())),
+        }
+        self.tokenizer.save(self.partial / TOKENIZER_FILE)
+
+    def pack_step(self) -> None:
+        config = self.definition.pack
+        specials = self.tokenizer.special_ids()
+        shard_folder = self.partial / SHARD_FOLDER
+        shard_folder.mkdir()
+        self.splits: dict[str, Any] = {}
+        for split in SPLITS:
+            count = len(self.offsets[split])
+            path = self.work / f"tokens-{split}.raw"
+            tokens = np.memmap(path, dtype=self.dtype, mode="r") if path.stat().st_size else np.zeros(0, self.dtype)
+            order = document_order(count, config.seed, split)
+            offsets, lengths = self.offsets[split], self.lengths[split]
+            documents = (tokens[offsets[i] : offsets[i] + lengths[i]] for i in order.tolist())
+            result = pack_split(
+                split,
+                documents,
+                config=config,
+                eod_id=specials["end_of_document"],
+                pad_id=specials["pad"],
+                bod_id=specials.get("begin_of_document"),
+                dtype=self.dtype,
+                folder=shard_folder,
+            )
+            del tokens
+            self.splits[split] = {
+                "documents": result.documents,
+                "tokens": result.tokens,
+                "windows": result.windows,
+                "pad_tokens": result.pad_tokens,
+                "dropped_tokens": result.dropped_tokens,
+                "shards": [
+                    {
+                        "file": f"{SHARD_FOLDER}/{shard.file}",
+                        "shape": list(shard.shape),
+                        "dtype": shard.dtype,
+                        "bytes": shard.bytes,
+                        "xxh3_128": shard.xxh3_128,
+                    }
+                    for shard in result.shards
+                ],
+            }
+            self.progress("pack", SPLITS.index(split) + 1, len(SPLITS))
+
+    # ------------------------------------------------------------------ records
+    def ledger_step(self) -> dict[str, Any]:
+        by_status = Counter(STATUSES[code] for code in self.status.tolist())
+        kept = by_status.get(KEPT, 0)
+        removed = sum(by_status.get(status, 0) for status in (EMPTY, EXACT_COPY, NEAR_COPY))
+        rejected = by_status.get(REJECTED, 0)
+        if kept + removed + rejected != self.rows:
+            raise IntegrityError(
+                f"ledger sum failed: read {self.rows} != kept {kept} + removed {removed} + rejected {rejected}"
+            )
+        write_ledger(
+            self.partial / LEDGER_FILE,
+            self.work / "documents.arrow",
+            status=[STATUSES[code] for code in self.status.tolist()],
+            duplicate_of=self.duplicate_of,
+            cluster_of=self.cluster_of,
+            similarity=self.similarity,
+            text_hashes=self.text_hashes,
+            split_of=self.split_of,
+            token_count=self.token_count,
+        )
+        size, digest = hash_file(self.partial / LEDGER_FILE)
+        return {
+            "file": LEDGER_FILE,
+            "bytes": size,
+            "xxh3_128": digest,
+            "rows": self.rows,
+            "read": self.rows,
+            "kept": kept,
+            "removed": removed,
+            "rejected": rejected,
+            "by_status": {status: by_status.get(status, 0) for status in STATUSES},
+            "sum_checked": True,
+        }
+
+    def manifest(self, ledger: dict[str, Any]) -> dict[str, Any]:
+        definition = self.definition
+        files = [
+            {"path": item.path, "format": item.format, "encoding": item.encoding, "bytes": item.size,
+             "xxh3_128": item.xxh3_128, "records": item.records, "rejected": item.rejected}
+            for item in self.inputs
+        ]
+        tokenizer_size, tokenizer_hash = hash_file(self.partial / TOKENIZER_FILE)
+        pack = definition.pack
+        return {
+            "format": "corpusprep output",
+            "schema_version": SCHEMA_VERSION,
+            "tool_version": __version__,
+            "definition": definition.resolved(),
+            "definition_hash": definition.digest(),
+            "inputs": {
+                "files": files,
+                "count": len(files),
+                "bytes": sum(item.size for item in self.inputs),
+                "digest": hash_text(json.dumps(files, sort_keys=True, separators=(",", ":"))),
+            },
+            "stages": self.stages,
+            "ledger": ledger,
+            "tokenizer": {
+                **self.tokenizer.describe(),
+                "file": TOKENIZER_FILE,
+                "bytes": tokenizer_size,
+                "xxh3_128": tokenizer_hash,
+            },
+            "windows": {
+                "length": pack.length,
+                "stored_length": pack.length + 1,
+                "stride": pack.length,
+                "dtype": np.dtype(self.dtype).str,
+                "input": "window[:-1]",
+                "target": "window[1:]",
+                "tail": pack.tail,
+            },
+            "splits": self.splits,
+        }
+
+
+def run_pipeline(
+    definition: Definition,
+    *,
+    workers: int = 1,
+    force: bool = False,
+    progress: ProgressCallback | None = None,
+) -> RunResult:
+    """Run ``definition`` end to end and publish its output folder."""
+    if definition.input is None:
+        raise InputError(f"{definition.source}: no input folder: set `input` in the definition or pass --input")
+    if definition.output is None:
+        raise InputError(f"{definition.source}: no output folder: set `output` in the definition or pass --output")
+    if not definition.input.is_dir():
+        raise InputError(f"{definition.input}: the input folder does not exist or is not a folder")
+    _check_output(definition.output, force)
+    run = _Run(definition, workers, progress)
+    if run.partial.exists():
+        shutil.rmtree(run.partial)
+    run.work.mkdir(parents=True)
+    try:
+        run.first_pass()
+        run.exact_step()
+        run.near_step()
+        run.split_step()
+        run.tokenize_step()
+        run.pack_step()
+        ledger = run.ledger_step()
+        manifest = run.manifest(ledger)
+        shutil.rmtree(run.work)
+        write_json_atomic(run.partial / MANIFEST_FILE, manifest)
+        _publish(run.partial, run.output)
+    except BaseException:
+        shutil.rmtree(run.partial, ignore_errors=True)
+        raise
+    return RunResult(output=run.output, manifest=manifest)

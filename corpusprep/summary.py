@@ -1,0 +1,83 @@
+"""Human-readable progress and summaries for the command line (rich)."""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+from typing import Any
+
+from rich.console import Console
+from rich.progress import BarColumn, MofNCompleteColumn, Progress, TaskID, TextColumn, TimeElapsedColumn
+from rich.table import Table
+
+from corpusprep.pipeline import ProgressCallback
+
+__all__ = ["print_summary", "progress_printer"]
+
+
+@contextmanager
+def progress_printer(*, enabled: bool = True) -> Iterator[ProgressCallback | None]:
+    """A progress callback that draws one bar per stage on stderr."""
+    if not enabled:
+        yield None
+        return
+    console = Console(stderr=True)
+    with Progress(
+        TextColumn("{task.description:<10}"),
+        BarColumn(),
+        MofNCompleteColumn(),
+        TimeElapsedColumn(),
+        console=console,
+        transient=True,
+    ) as bars:
+        tasks: dict[str, TaskID] = {}
+
+        def callback(stage: str, done: int, total: int | None) -> None:
+            if stage not in tasks:
+                tasks[stage] = bars.add_task(stage, total=total)
+            bars.update(tasks[stage], completed=done, total=total)
+
+        yield callback
+
+
+def print_summary(manifest: dict[str, Any], output: Path) -> None:
+    """Print what a run produced: fates of the records, then splits."""
+    console = Console()
+    ledger = manifest["ledger"]
+    fates = Table(title="Input records", show_edge=False)
+    fates.add_column("fate")
+    fates.add_column("records", justify="right")
+    for status, count in ledger["by_status"].items():
+        fates.add_row(status, f"{count:,}")
+    fates.add_row("[bold]read[/bold]", f"[bold]{ledger['read']:,}[/bold]")
+    console.print(fates)
+    rejected = manifest["stages"]["read"].get("rejected_by_reason", {})
+    if rejected:
+        console.print("rejected: " + ", ".join(f"{reason} {count}" for reason, count in rejected.items()))
+    near = manifest["stages"].get("near", {})
+    if near.get("enabled", True) and "clusters" in near:
+        console.print(
+            f"near duplicates: {near.get('candidates', 0):,} candidate pairs, {near.get('verified', 0):,} verified, "
+            f"{near.get('clusters', 0):,} clusters, {near.get('near_copy_removed', 0):,} removed"
+        )
+    splits = Table(title="Splits", show_edge=False)
+    for column in ("split", "documents", "tokens", "windows", "pad tokens", "shards"):
+        splits.add_column(column, justify="left" if column == "split" else "right")
+    for name, split in manifest["splits"].items():
+        splits.add_row(
+            name,
+            f"{split['documents']:,}",
+            f"{split['tokens']:,}",
+            f"{split['windows']:,}",
+            f"{split['pad_tokens']:,}",
+            f"{len(split['shards']):,}",
+        )
+    console.print(splits)
+    windows = manifest["windows"]
+    console.print(
+        f"windows of {windows['stored_length']} tokens ({windows['dtype']}), input = {windows['input']}, "
+        f"target = {windows['target']}; tokenizer {manifest['tokenizer']['kind']} "
+        f"(vocabulary {manifest['tokenizer'].get('vocab_size', '?')})"
+    )
+    console.print(f"output: {output} (definition hash {manifest['definition_hash'][:12]}…)")
