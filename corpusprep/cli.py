@@ -25,7 +25,16 @@ from typing import Annotated, Any, NoReturn, TypeVar
 
 import typer
 
-__all__ = ["EXIT_DAMAGED", "EXIT_FAILED", "EXIT_INTERRUPTED", "EXIT_LEAKAGE", "EXIT_OK", "EXIT_USAGE", "app", "main"]
+__all__ = [
+    "EXIT_DAMAGED",
+    "EXIT_FAILED",
+    "EXIT_INTERRUPTED",
+    "EXIT_LEAKAGE",
+    "EXIT_OK",
+    "EXIT_USAGE",
+    "app",
+    "main",
+]
 
 EXIT_OK = 0
 EXIT_FAILED = 1
@@ -74,7 +83,10 @@ def _guard(debug: bool, action: Callable[[], T]) -> T:
     except Exception as error:
         if debug:
             traceback.print_exc()
-        _fail(f"unexpected {type(error).__name__}: {error} (run again with --debug for the traceback)", EXIT_FAILED)
+        _fail(
+            f"unexpected {type(error).__name__}: {error} (run again with --debug for the traceback)",
+            EXIT_FAILED,
+        )
 
 
 def _default_workers() -> int:
@@ -102,7 +114,9 @@ def check(
 @app.command()
 def run(
     pipeline: Annotated[Path, typer.Argument(help="Pipeline definition (TOML).")],
-    input: Annotated[Path | None, typer.Option("--input", help="Read this folder instead of the definition's.")] = None,
+    input: Annotated[
+        Path | None, typer.Option("--input", help="Read this folder instead of the definition's.")
+    ] = None,
     output: Annotated[
         Path | None, typer.Option("--output", help="Write this folder instead of the definition's.")
     ] = None,

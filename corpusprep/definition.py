@@ -152,9 +152,8 @@ def _check_value(dotted: str, value: Any, kind: Any, meta: Mapping[str, Any], wh
         if isinstance(value, bool) or not isinstance(value, int | float):
             raise DefinitionError(f"{prefix}: must be a number")
         value = float(value)
-    elif kind is str:
-        if not isinstance(value, str):
-            raise DefinitionError(f"{prefix}: must be a string")
+    elif kind is str and not isinstance(value, str):
+        raise DefinitionError(f"{prefix}: must be a string")
     choices = meta.get("choices")
     if choices and value not in choices:
         raise DefinitionError(f"{prefix}: must be one of {', '.join(repr(c) for c in choices)}")

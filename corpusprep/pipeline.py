@@ -13,6 +13,7 @@ renaming once the manifest, written last, is in place.
 
 from __future__ import annotations
 
+import contextlib
 import functools
 import json
 import os
@@ -25,7 +26,6 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from corpusprep import __version__
 from corpusprep.clean import CleanConfig, clean_batch
@@ -77,7 +77,10 @@ def _prepare(batch: pa.RecordBatch, clean: CleanConfig, exact: ExactConfig, near
     """First-pass work on one batch (runs in a worker process)."""
     cleaned, clean_counts = clean_batch(batch, clean)
     status = cleaned.column("status").to_pylist()
-    texts = [text if state == KEPT else None for text, state in zip(cleaned.column("text").to_pylist(), status, strict=True)]
+    texts = [
+        text if state == KEPT else None
+        for text, state in zip(cleaned.column("text").to_pylist(), status, strict=True)
+    ]
     text_hashes = exact_keys(texts, ExactConfig(key="text"))
     keys = text_hashes if exact.key == "text" else exact_keys(texts, exact)
     signatures = None
@@ -142,7 +145,9 @@ class _Run:
     # ------------------------------------------------------------------ pass 1
     def first_pass(self) -> None:
         definition = self.definition
-        prepare = functools.partial(_prepare, clean=definition.clean, exact=definition.exact, near=definition.near)
+        prepare = functools.partial(
+            _prepare, clean=definition.clean, exact=definition.exact, near=definition.near
+        )
         batches: Iterator[pa.RecordBatch] = self._read_batches()
         statuses: list[np.ndarray] = []
         text_hashes: list[np.ndarray] = []
@@ -211,7 +216,8 @@ class _Run:
         if rows and rejected / rows > limit:
             raise TooManyRejectedError(
                 f"{rejected} of {rows} input records were rejected ({rejected / rows:.1%}), more than "
-                f"read.max_rejected_fraction = {limit:g} allows. First rejections: " + "; ".join(examples)
+                f"read.max_rejected_fraction = {limit:g} allows. First rejections: "
+                + "; ".join(examples)
                 + ". Fix the input or raise read.max_rejected_fraction."
             )
 
@@ -256,7 +262,7 @@ class _Run:
             self.duplicate_of[kept[copies]] = kept[result.near_copy_of[copies]]
         report = dict(self.near_counts)
         report.update(result.report)
-        report["near_copy_removed"] = int(len(copies)) if near.action == "remove" else 0
+        report["near_copy_removed"] = len(copies) if near.action == "remove" else 0
         report["documents_joined"] = int(np.count_nonzero(in_cluster))
         self.stages["near"] = report
 
@@ -297,9 +303,11 @@ class _Run:
             self.split_of[row] = split
         documents = Counter(splits)
         self.stages["split"] = {
-            "components": int(len(np.unique(component_of))) if len(kept) else 0,
+            "components": len(np.unique(component_of)) if len(kept) else 0,
             "documents": {name: documents.get(name, 0) for name in SPLITS},
-            "fractions": {name: (documents.get(name, 0) / len(kept) if len(kept) else 0.0) for name in SPLITS},
+            "fractions": {
+                name: (documents.get(name, 0) / len(kept) if len(kept) else 0.0) for name in SPLITS
+            },
         }
 
     # ------------------------------------------------------------------ pass 2
@@ -326,8 +334,10 @@ class _Run:
                     start += batch.num_rows
                     yield texts.to_pylist()
 
-        files = {name: open(self.work / f"tokens-{name}.raw", "wb") for name in SPLITS}
-        try:
+        with contextlib.ExitStack() as stack:
+            files = {
+                name: stack.enter_context(open(self.work / f"tokens-{name}.raw", "wb")) for name in SPLITS
+            }
             done = 0
             for batch_index, encoded in enumerate(ordered_map(encode, kept_texts(), workers=self.workers)):
                 for row, ids in zip(row_lists[batch_index], encoded, strict=True):
@@ -342,9 +352,6 @@ class _Run:
                 done += len(row_lists[batch_index])
                 row_lists[batch_index] = []
                 self.progress("tokenize", done, None)
-        finally:
-            for handle in files.values():
-                handle.close()
         self.offsets = {name: np.array(offsets[name], dtype=np.int64) for name in SPLITS}
         self.lengths = {name: np.array(lengths[name], dtype=np.int64) for name in SPLITS}
         self.stages["tokenize"] = {
@@ -363,7 +370,11 @@ class _Run:
         for split in SPLITS:
             count = len(self.offsets[split])
             path = self.work / f"tokens-{split}.raw"
-            tokens = np.memmap(path, dtype=self.dtype, mode="r") if path.stat().st_size else np.zeros(0, self.dtype)
+            tokens = (
+                np.memmap(path, dtype=self.dtype, mode="r")
+                if path.stat().st_size
+                else np.zeros(0, self.dtype)
+            )
             order = document_order(count, config.seed, split)
             offsets, lengths = self.offsets[split], self.lengths[split]
             documents = (tokens[offsets[i] : offsets[i] + lengths[i]] for i in order.tolist())
@@ -405,7 +416,8 @@ class _Run:
         rejected = by_status.get(REJECTED, 0)
         if kept + removed + rejected != self.rows:
             raise IntegrityError(
-                f"ledger sum failed: read {self.rows} != kept {kept} + removed {removed} + rejected {rejected}"
+                f"ledger sum failed: read {self.rows} != "
+                f"kept {kept} + removed {removed} + rejected {rejected}"
             )
         write_ledger(
             self.partial / LEDGER_FILE,
@@ -435,8 +447,15 @@ class _Run:
     def manifest(self, ledger: dict[str, Any]) -> dict[str, Any]:
         definition = self.definition
         files = [
-            {"path": item.path, "format": item.format, "encoding": item.encoding, "bytes": item.size,
-             "xxh3_128": item.xxh3_128, "records": item.records, "rejected": item.rejected}
+            {
+                "path": item.path,
+                "format": item.format,
+                "encoding": item.encoding,
+                "bytes": item.size,
+                "xxh3_128": item.xxh3_128,
+                "records": item.records,
+                "rejected": item.rejected,
+            }
             for item in self.inputs
         ]
         tokenizer_size, tokenizer_hash = hash_file(self.partial / TOKENIZER_FILE)
@@ -483,9 +502,13 @@ def run_pipeline(
 ) -> RunResult:
     """Run ``definition`` end to end and publish its output folder."""
     if definition.input is None:
-        raise InputError(f"{definition.source}: no input folder: set `input` in the definition or pass --input")
+        raise InputError(
+            f"{definition.source}: no input folder: set `input` in the definition or pass --input"
+        )
     if definition.output is None:
-        raise InputError(f"{definition.source}: no output folder: set `output` in the definition or pass --output")
+        raise InputError(
+            f"{definition.source}: no output folder: set `output` in the definition or pass --output"
+        )
     if not definition.input.is_dir():
         raise InputError(f"{definition.input}: the input folder does not exist or is not a folder")
     _check_output(definition.output, force)

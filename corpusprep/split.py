@@ -25,7 +25,7 @@ from corpusprep.config import setting
 from corpusprep.errors import DefinitionError
 from corpusprep.hashing import keyed_hash64
 
-__all__ = ["SPLITS", "SplitConfig", "assign_splits", "split_of", "components"]
+__all__ = ["SPLITS", "SplitConfig", "assign_splits", "components", "split_of"]
 
 SPLITS = ("train", "validation", "test")
 _TWO_64 = float(2**64)
@@ -44,7 +44,8 @@ class SplitConfig:
         total = self.train + self.validation + self.test
         if abs(total - 1.0) > 1e-9:
             raise DefinitionError(
-                f"split.train + split.validation + split.test = {total:g}: the three fractions must add up to 1"
+                f"split.train + split.validation + split.test = {total:g}: "
+                "the three fractions must add up to 1"
             )
 
 

@@ -58,7 +58,8 @@ def print_summary(manifest: dict[str, Any], output: Path) -> None:
     near = manifest["stages"].get("near", {})
     if near.get("enabled", True) and "clusters" in near:
         console.print(
-            f"near duplicates: {near.get('candidates', 0):,} candidate pairs, {near.get('verified', 0):,} verified, "
+            f"near duplicates: {near.get('candidates', 0):,} candidate pairs, "
+            f"{near.get('verified', 0):,} verified, "
             f"{near.get('clusters', 0):,} clusters, {near.get('near_copy_removed', 0):,} removed"
         )
     splits = Table(title="Splits", show_edge=False)
