@@ -72,6 +72,10 @@ def setting_docs(config_cls: type) -> list[SettingDoc]:
     rows = []
     for field in dataclasses.fields(config_cls):
         meta = dict(field.metadata)
-        type_name = field.type if isinstance(field.type, str) else getattr(field.type, "__name__", str(field.type))
-        rows.append(SettingDoc(field.name, str(type_name), field.default, meta.get("doc", ""), _allowed(meta)))
+        type_name = (
+            field.type if isinstance(field.type, str) else getattr(field.type, "__name__", str(field.type))
+        )
+        rows.append(
+            SettingDoc(field.name, str(type_name), field.default, meta.get("doc", ""), _allowed(meta))
+        )
     return rows
