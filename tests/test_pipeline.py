@@ -1,0 +1,184 @@
+"""The whole job on the demo archive, checked with libraries outside the project.
+
+- shards against the NumPy ``.npy`` format specification (numpy.lib.format docs, NEP 1) and
+  ``numpy.load(mmap_mode="r", allow_pickle=False)``;
+- shard and ledger hashes recomputed with python-xxhash (XXH3-128, big-endian hex digest);
+- the ledger read back with pyarrow's Parquet reader;
+- windows decoded with HF ``tokenizers`` from the written ``tokenizer.json``: the stream between
+  end-of-document tokens must reproduce exactly the kept documents of that split.
+"""
+
+from __future__ import annotations
+
+import ast
+import json
+import struct
+import sys
+from collections import Counter
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+import xxhash
+
+from corpusprep.definition import load_definition
+from corpusprep.errors import OutputExistsError, TooManyRejectedError
+from corpusprep.pipeline import run_pipeline
+
+ROOT = Path(__file__).parent.parent
+sys.path.insert(0, str(ROOT / "fixtures"))
+import make_ferry_archive  # noqa: E402
+
+DEMO = ROOT / "pipelines" / "demo.toml"
+
+
+def _tree_bytes(folder: Path) -> dict[str, bytes]:
+    return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+@pytest.fixture(scope="session")
+def archive(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    folder = tmp_path_factory.mktemp("ferry") / "ferry"
+    make_ferry_archive.build(folder)
+    return folder
+
+
+@pytest.fixture(scope="session")
+def demo_output(archive: Path, tmp_path_factory: pytest.TempPathFactory) -> Path:
+    output = tmp_path_factory.mktemp("runs") / "demo"
+    definition = load_definition(DEMO).with_folders(input=archive, output=output)
+    run_pipeline(definition, workers=1)
+    return output
+
+
+def _manifest(output: Path) -> dict[str, Any]:
+    return json.loads((output / "manifest.json").read_text(encoding="utf-8"))
+
+
+def test_ledger_sum_holds_and_matches_the_manifest(demo_output: Path) -> None:
+    manifest = _manifest(demo_output)
+    ledger = pq.read_table(demo_output / "ledger.parquet").to_pylist()
+    statuses = Counter(row["status"] for row in ledger)
+    assert len(ledger) == manifest["ledger"]["read"] == manifest["stages"]["read"]["records"]
+    assert manifest["ledger"]["by_status"] == {s: statuses.get(s, 0) for s in manifest["ledger"]["by_status"]}
+    assert sum(statuses.values()) == len(ledger)
+    assert len({row["record_id"] for row in ledger}) == len(ledger)
+    # every record that is not kept says why
+    assert all(row["reason"] for row in ledger if row["status"] != "kept")
+    # every kept document has a split and a token count; nothing else does
+    for row in ledger:
+        assert (row["split"] is not None) == (row["status"] == "kept")
+    per_split = Counter(row["split"] for row in ledger if row["status"] == "kept")
+    for split, info in manifest["splits"].items():
+        assert info["documents"] == per_split.get(split, 0)
+
+
+def test_input_files_are_listed_with_their_hashes(archive: Path, demo_output: Path) -> None:
+    manifest = _manifest(demo_output)
+    listed = {item["path"]: item for item in manifest["inputs"]["files"]}
+    on_disk = {str(p.relative_to(archive)).replace("\\", "/"): p for p in archive.rglob("*") if p.is_file()}
+    for path, item in listed.items():
+        data = on_disk[path].read_bytes()
+        assert item["bytes"] == len(data)
+        assert item["xxh3_128"] == xxhash.xxh3_128(data).hexdigest()
+
+
+def _npy_header(data: bytes) -> tuple[int, dict[str, Any]]:
+    # numpy.lib.format: magic "\x93NUMPY", major, minor, little-endian uint16 HEADER_LEN (v1.0),
+    # ASCII dict header padded with spaces, ending in "\n", total divisible by 64.
+    assert data[:6] == b"\x93NUMPY"
+    assert (data[6], data[7]) == (1, 0)
+    (header_len,) = struct.unpack("<H", data[8:10])
+    assert (10 + header_len) % 64 == 0
+    header = data[10 : 10 + header_len].decode("latin-1")
+    assert header.endswith("\n")
+    return 10 + header_len, ast.literal_eval(header)
+
+
+def test_shards_follow_the_npy_format(demo_output: Path) -> None:
+    manifest = _manifest(demo_output)
+    length = manifest["windows"]["length"]
+    shard_count = 0
+    for info in manifest["splits"].values():
+        for shard in info["shards"]:
+            shard_count += 1
+            data = (demo_output / shard["file"]).read_bytes()
+            offset, header = _npy_header(data)
+            assert header["descr"] == shard["dtype"] and header["descr"].startswith("<u")
+            assert header["fortran_order"] is False
+            assert list(header["shape"]) == shard["shape"] and shard["shape"][1] == length + 1
+            itemsize = np.dtype(header["descr"]).itemsize
+            assert len(data) == offset + shard["shape"][0] * shard["shape"][1] * itemsize
+            assert xxhash.xxh3_128(data).hexdigest() == shard["xxh3_128"]
+            array = np.load(demo_output / shard["file"], mmap_mode="r", allow_pickle=False)
+            assert isinstance(array, np.memmap) and array.shape == tuple(shard["shape"])
+            assert int(array.max()) < manifest["tokenizer"]["vocab_size"]
+    assert shard_count >= 3
+
+
+def test_windows_reproduce_the_kept_documents(demo_output: Path) -> None:
+    from tokenizers import Tokenizer
+
+    manifest = _manifest(demo_output)
+    tokenizer = Tokenizer.from_file(str(demo_output / "tokenizer.json"))
+    eod = manifest["tokenizer"]["special_ids"]["end_of_document"]
+    pad = manifest["tokenizer"]["special_ids"]["pad"]
+    ledger = pq.read_table(demo_output / "ledger.parquet").to_pylist()
+    for split, info in manifest["splits"].items():
+        expected = Counter(row["text_hash"] for row in ledger if row["split"] == split)
+        stream: list[int] = []
+        for shard in info["shards"]:
+            windows = np.load(demo_output / shard["file"], mmap_mode="r", allow_pickle=False)
+            for window in windows:
+                # consecutive windows share one token: window k ends where window k+1 starts
+                if stream:
+                    assert stream[-1] == int(window[0])
+                    stream.extend(int(t) for t in window[1:])
+                else:
+                    stream.extend(int(t) for t in window)
+        while stream and stream[-1] == pad:
+            stream.pop()
+        pieces: list[list[int]] = [[]]
+        for token in stream:
+            if token == eod:
+                pieces.append([])
+            else:
+                pieces[-1].append(token)
+        complete = pieces[:-1]  # the last piece may be cut by the dropped or padded tail
+        found = Counter(xxhash.xxh3_128(tokenizer.decode(p, skip_special_tokens=False).encode()).hexdigest() for p in complete)
+        assert found <= expected, f"{split}: a decoded document is not a kept document of the split"
+        assert sum(expected.values()) - sum(found.values()) <= 1
+
+
+def test_rerun_and_worker_count_give_identical_bytes(archive: Path, demo_output: Path, tmp_path: Path) -> None:
+    definition = load_definition(DEMO)
+    again = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "one"), workers=1).output
+    parallel = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "two"), workers=2).output
+    reference = _tree_bytes(demo_output)
+    assert _tree_bytes(again) == reference
+    assert _tree_bytes(parallel) == reference
+
+
+def test_refuses_a_non_empty_output_unless_forced(archive: Path, tmp_path: Path) -> None:
+    output = tmp_path / "out"
+    output.mkdir()
+    (output / "keep.txt").write_text("earlier work", encoding="utf-8")
+    definition = load_definition(DEMO).with_folders(input=archive, output=output)
+    with pytest.raises(OutputExistsError, match="--force"):
+        run_pipeline(definition)
+    assert (output / "keep.txt").exists()
+    run_pipeline(definition, force=True)
+    assert (output / "manifest.json").exists() and not (output / "keep.txt").exists()
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".")], "no temporary folder is left behind"
+
+
+def test_too_many_rejected_records_stop_the_run(tmp_path: Path) -> None:
+    raw = tmp_path / "raw"
+    raw.mkdir()
+    (raw / "bad.jsonl").write_text('{"text": "fine"}\nnot json\n{"nope": 1}\n', encoding="utf-8")
+    definition = load_definition(DEMO).with_folders(input=raw, output=tmp_path / "out")
+    with pytest.raises(TooManyRejectedError, match=r"bad.jsonl:2: invalid_json"):
+        run_pipeline(definition)
+    assert not (tmp_path / "out").exists()
