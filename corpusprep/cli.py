@@ -143,6 +143,25 @@ def run(
     _guard(debug, action)
 
 
+@app.command()
+def inspect(
+    output: Annotated[Path, typer.Argument(help="A finished output folder.")],
+    show: Annotated[int, typer.Option("--show", min=0, help="Decode this many windows back to text.")] = 0,
+    split: Annotated[str, typer.Option("--split", help="Split whose windows --show decodes.")] = "train",
+    debug: DebugOption = False,
+) -> None:
+    """Counts per split, the shard table, and a few windows decoded back to text."""
+
+    def action() -> None:
+        from corpusprep.summary import print_overview
+
+        if not (output / "manifest.json").is_file():
+            _fail(f"{output}: no manifest.json; not a finished corpusprep output", EXIT_USAGE)
+        print_overview(output, show=show, split=split)
+
+    _guard(debug, action)
+
+
 def main(argv: list[str] | None = None) -> Any:
     """Console-script entry point."""
     try:

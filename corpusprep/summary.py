@@ -82,3 +82,48 @@ def print_summary(manifest: dict[str, Any], output: Path) -> None:
         f"(vocabulary {manifest['tokenizer'].get('vocab_size', '?')})"
     )
     console.print(f"output: {output} (definition hash {manifest['definition_hash'][:12]}…)")
+
+
+def print_overview(folder: Path, *, show: int = 0, split: str = "train") -> None:
+    """Counts per split, the shard table, and optionally ``show`` windows decoded back to text.
+
+    A decoded window is printed as its input (``x = w[:-1]``) and the target's
+    last token, so the one-token shift is visible: the target is the input
+    moved left by one token, plus the token after the input's end.
+    """
+    from tokenizers import Tokenizer
+
+    from corpusprep.manifest import read_manifest
+    from corpusprep.windows import open_split, safe_member
+
+    console = Console()
+    manifest = read_manifest(folder)
+    ledger = manifest["ledger"]
+    console.print(
+        f"{folder}: {ledger['read']:,} records read, {ledger['kept']:,} kept, {ledger['removed']:,} removed, "
+        f"{ledger['rejected']:,} rejected; windows of {manifest['windows']['stored_length']} tokens "
+        f"({manifest['windows']['dtype']}), tokenizer {manifest['tokenizer']['kind']}"
+    )
+    shards = Table(title="Shards", show_edge=False)
+    for column in ("file", "split", "windows", "dtype", "bytes", "xxh3_128"):
+        shards.add_column(column, justify="right" if column in ("windows", "bytes") else "left")
+    for name, info in manifest["splits"].items():
+        for shard in info["shards"]:
+            shards.add_row(
+                shard["file"], name, f"{shard['shape'][0]:,}", shard["dtype"], f"{shard['bytes']:,}", shard["xxh3_128"]
+            )
+    console.print(shards)
+    if show <= 0:
+        return
+    tokenizer = Tokenizer.from_file(str(safe_member(folder, manifest["tokenizer"]["file"])))
+    windows = open_split(folder, split, verify=False)
+    for index in range(min(show, len(windows))):
+        x, y = windows[index]
+        console.rule(f"{split} window {index}")
+        console.print("[bold]input [/bold]", repr(tokenizer.decode(x.tolist(), skip_special_tokens=False)), markup=True)
+        console.print(
+            "[bold]target[/bold] = input shifted left by one token; its last token is "
+            + repr(tokenizer.decode([int(y[-1])], skip_special_tokens=False)),
+            markup=True,
+        )
+        console.print(f"ids x[:8] = {x[:8].tolist()}  y[:8] = {y[:8].tolist()}")
