@@ -35,7 +35,7 @@ from corpusprep.exact import ExactConfig, exact_keys, first_occurrences
 from corpusprep.hashing import hash_file, hash_text
 from corpusprep.ledger import LEDGER_FILE, write_ledger
 from corpusprep.manifest import MANIFEST_FILE, SCHEMA_VERSION, write_json_atomic
-from corpusprep.near import NearConfig, find_clusters, signature_batch
+from corpusprep.near import NearConfig, document_shingles, find_clusters, signature_batch
 from corpusprep.pack import document_order, pack_split, smallest_dtype
 from corpusprep.pool import ordered_map
 from corpusprep.read import InputFile, read_folder
@@ -50,8 +50,10 @@ ProgressCallback = Callable[[str, int, "int | None"], None]
 
 SHARD_FOLDER = "shards"
 TOKENIZER_FILE = "tokenizer.json"
+SIGNATURE_FILE = "signatures.npy"
 _STATUS_CODE = {status: code for code, status in enumerate(STATUSES)}
 _WORK = ".work"
+_CHUNK_ROWS = 1 << 16
 
 
 @dataclass(frozen=True, slots=True)
@@ -243,33 +245,50 @@ class _Run:
     def near_step(self) -> None:
         self.cluster_of = np.full(self.rows, -1, dtype=np.int64)
         self.similarity = np.full(self.rows, np.nan, dtype=np.float64)
+        self.signed_rows = np.zeros(0, dtype=np.int64)
         near = self.definition.near
         if not near.enabled or not self.has_signatures:
             self.stages["near"] = {"enabled": False}
             return
         kept = np.flatnonzero(self.status == _STATUS_CODE[KEPT])
-        raw = np.memmap(self.work / "signatures.raw", dtype=self.signature_dtype, mode="r")
-        signatures = raw.reshape(-1, self.permutations)[kept]
-        result = find_clusters(signatures, near)
-        del raw
-        in_cluster = result.cluster != np.arange(len(kept))
-        members = np.flatnonzero((result.cluster >= 0) & (self._cluster_sizes(result.cluster) > 1))
+        signatures = self._compact_signatures(kept)
+        with pa.memory_map(str(self.work / "documents.arrow")) as source:
+            texts = pa.ipc.open_file(source).read_all().column("text")
+
+            def shingles_of(index: int) -> np.ndarray:
+                return document_shingles(texts[int(kept[index])].as_py() or "", near)
+
+            result = find_clusters(signatures, near, shingles_of=shingles_of if near.verify == "exact" else None)
+            del texts
+        del signatures
+        sizes = np.bincount(result.cluster, minlength=len(kept)) if len(kept) else np.zeros(0, np.int64)
+        members = np.flatnonzero(sizes[result.cluster] > 1) if len(kept) else np.zeros(0, np.int64)
         self.cluster_of[kept[members]] = kept[result.cluster[members]]
         copies = np.flatnonzero(result.near_copy_of >= 0)
         self.similarity[kept[copies]] = result.similarity[copies]
         if near.action == "remove":
             self.status[kept[copies]] = _STATUS_CODE[NEAR_COPY]
             self.duplicate_of[kept[copies]] = kept[result.near_copy_of[copies]]
-        report = dict(self.near_counts)
+        self.signed_rows = kept
+        report: dict[str, Any] = {"enabled": True, "action": near.action}
+        report.update(self.near_counts)
         report.update(result.report)
-        report["near_copy_removed"] = len(copies) if near.action == "remove" else 0
-        report["documents_joined"] = int(np.count_nonzero(in_cluster))
+        report["near_copy"] = int(len(copies)) if near.action == "remove" else 0
         self.stages["near"] = report
 
-    @staticmethod
-    def _cluster_sizes(cluster: np.ndarray) -> np.ndarray:
-        sizes = np.bincount(cluster[cluster >= 0], minlength=len(cluster))
-        return sizes[np.maximum(cluster, 0)]
+    def _compact_signatures(self, rows: np.ndarray) -> np.ndarray:
+        """Copy the signatures of ``rows`` into their own memory-mapped file, chunk by chunk."""
+        raw = np.memmap(self.work / "signatures.raw", dtype=self.signature_dtype, mode="r")
+        allrows = raw.reshape(-1, self.permutations)
+        path = self.work / "signatures-kept.raw"
+        if len(rows) == 0:
+            return np.zeros((0, self.permutations), dtype=self.signature_dtype)
+        compact = np.memmap(path, dtype=self.signature_dtype, mode="w+", shape=(len(rows), self.permutations))
+        for start in range(0, len(rows), _CHUNK_ROWS):
+            compact[start : start + _CHUNK_ROWS] = allrows[rows[start : start + _CHUNK_ROWS]]
+        compact.flush()
+        del raw, allrows
+        return np.memmap(path, dtype=self.signature_dtype, mode="r", shape=(len(rows), self.permutations))
 
     def split_step(self) -> None:
         kept = np.flatnonzero(self.status == _STATUS_CODE[KEPT])
@@ -409,6 +428,36 @@ class _Run:
             self.progress("pack", SPLITS.index(split) + 1, len(SPLITS))
 
     # ------------------------------------------------------------------ records
+    def signatures_step(self) -> dict[str, Any] | None:
+        """Keep the MinHash signatures of the kept documents, so an audit needs no raw corpus."""
+        if not len(self.signed_rows):
+            return None
+        still_kept = self.status[self.signed_rows] == _STATUS_CODE[KEPT]
+        positions = np.flatnonzero(still_kept)
+        source = np.memmap(
+            self.work / "signatures-kept.raw",
+            dtype=self.signature_dtype,
+            mode="r",
+            shape=(len(self.signed_rows), self.permutations),
+        )
+        path = self.partial / SIGNATURE_FILE
+        target = np.lib.format.open_memmap(
+            path, mode="w+", dtype=np.dtype(self.signature_dtype).newbyteorder("<"), shape=(len(positions), self.permutations)
+        )
+        for start in range(0, len(positions), _CHUNK_ROWS):
+            target[start : start + _CHUNK_ROWS] = source[positions[start : start + _CHUNK_ROWS]]
+        target.flush()
+        del target, source
+        size, digest = hash_file(path)
+        return {
+            "file": SIGNATURE_FILE,
+            "rows": "one per ledger row with status kept, in ledger order",
+            "shape": [len(positions), self.permutations],
+            "dtype": np.dtype(self.signature_dtype).newbyteorder("<").str,
+            "bytes": size,
+            "xxh3_128": digest,
+        }
+
     def ledger_step(self) -> dict[str, Any]:
         by_status = Counter(STATUSES[code] for code in self.status.tolist())
         kept = by_status.get(KEPT, 0)
@@ -444,7 +493,7 @@ class _Run:
             "sum_checked": True,
         }
 
-    def manifest(self, ledger: dict[str, Any]) -> dict[str, Any]:
+    def manifest(self, ledger: dict[str, Any], signatures: dict[str, Any] | None) -> dict[str, Any]:
         definition = self.definition
         files = [
             {
@@ -490,6 +539,7 @@ class _Run:
                 "tail": pack.tail,
             },
             "splits": self.splits,
+            "signatures": signatures,
         }
 
 
@@ -524,7 +574,8 @@ def run_pipeline(
         run.tokenize_step()
         run.pack_step()
         ledger = run.ledger_step()
-        manifest = run.manifest(ledger)
+        signatures = run.signatures_step()
+        manifest = run.manifest(ledger, signatures)
         shutil.rmtree(run.work)
         write_json_atomic(run.partial / MANIFEST_FILE, manifest)
         _publish(run.partial, run.output)
