@@ -269,17 +269,17 @@ def test_planted_fixes_are_present(built: tuple[Path, dict[str, Any]], planted: 
             assert "\u200b" in text and "\ufeff" in text
         elif fix == "unify_newlines":
             assert "\r\n" in text
-        elif fix == "normalize":
+        elif fix == "normalization":
             import unicodedata
 
             assert unicodedata.normalize("NFC", text) != text
-        elif fix == "trailing_whitespace":
+        elif fix == "trim_trailing_whitespace":
             assert any(line != line.rstrip() for line in text.split("\n"))
-        elif fix == "blank_lines":
+        elif fix == "max_blank_lines":
             assert "\n\n\n\n" in text
         else:
             pytest.fail(f"no check for {fix}")
-    assert {"fix_mojibake", "invisible", "unify_newlines", "normalize"} <= fixes
+    assert {"fix_mojibake", "invisible", "unify_newlines", "normalization"} <= fixes
 
 
 # --------------------------------------------------------------------------- copies
@@ -357,3 +357,45 @@ def test_no_unplanted_near_copies_among_bulletins(
         union = len(shingled[a] | shingled[b])
         worst = max(worst, len(shingled[a] & shingled[b]) / union)
     assert worst < 0.6
+
+
+# --------------------------------------------------------------------------- against the real stages
+
+
+def test_fix_names_are_clean_stage_counters(planted: dict[str, Any]) -> None:
+    from corpusprep.clean import STEP_COUNTERS
+
+    for entry in _entries(planted, "fix"):
+        assert entry["fix"] in STEP_COUNTERS, entry
+
+
+def test_read_and_clean_stages_meet_every_planted_item(
+    built: tuple[Path, dict[str, Any]], planted: dict[str, Any]
+) -> None:
+    """The read stage rejects exactly the planted records and the clean stage counts the planted fixes."""
+    from corpusprep.clean import CleanConfig, clean_batch
+    from corpusprep.read import InputFile, ReadConfig, read_folder
+
+    root, _document = built
+    config = ReadConfig(include=("**/*",), id_field="id", group_field="thread")
+    rows: list[dict[str, Any]] = []
+    encodings: dict[str, str] = {}
+    cleaned: dict[str, dict[str, Any]] = {}
+    for item in read_folder(root, config):
+        if isinstance(item, InputFile):
+            encodings[item.path] = item.encoding
+            continue
+        rows.extend(item.to_pylist())
+        batch, _report = clean_batch(item, CleanConfig())
+        cleaned.update((row["record_id"], row) for row in batch.to_pylist())
+    assert len(rows) == planted["summary"]["records"]
+    rejected = {(row["source"], row["line"]): row["reason"].split(":")[0] for row in rows if row["reason"]}
+    expected = {(e["source"], e["line"]): e["reason"] for e in _entries(planted, "rejected")}
+    assert rejected == expected
+    for entry in _entries(planted, "encoding"):
+        assert encodings[entry["source"]] == entry["encoding"], entry
+    for entry in _entries(planted, "empty"):
+        assert cleaned[_record_id(entry["source"], entry["line"])]["status"] == "empty", entry
+    for entry in _entries(planted, "fix"):
+        if entry["fix"] == "fix_mojibake":
+            assert cleaned[_record_id(entry["source"], entry["line"])]["text"] == entry["expected_text"]
