@@ -41,7 +41,7 @@ from __future__ import annotations
 import json
 import os
 from collections.abc import Sequence
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Protocol, runtime_checkable
 
@@ -320,7 +320,6 @@ class ByteTokenizer:
             "special_tokens": {
                 role: {"text": text, "id": ids[role]} for role, text in self.config.specials().items()
             },
-            "settings": {item.name: getattr(self.config, item.name) for item in fields(self.config)},
         }
 
 
