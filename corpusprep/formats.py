@@ -83,6 +83,29 @@ class BlankLine:
     line: int
 
 
+class LongNumber:
+    """A JSON integer too long for Python's ``int`` conversion limit, kept as its digits.
+
+    RFC 8259 §6 puts no bound on the length of a number, so such a record is
+    valid JSON; it is not a string, and as an id it keeps its digits.
+    """
+
+    __slots__ = ("digits",)
+
+    def __init__(self, digits: str) -> None:
+        self.digits = digits
+
+    def __str__(self) -> str:
+        return self.digits
+
+
+def _parse_int(digits: str) -> int | LongNumber:
+    try:
+        return int(digits)
+    except ValueError:
+        return LongNumber(digits)
+
+
 class JsonFileError(ValueError):
     """A JSON file does not parse as a whole; the message says where."""
 
@@ -102,7 +125,7 @@ def label(value: Any) -> str | None:
         return value or None
     if isinstance(value, bool):
         return "true" if value else "false"
-    if isinstance(value, int | float):
+    if isinstance(value, int | float | LongNumber):
         return str(value)
     return json.dumps(value, ensure_ascii=False, sort_keys=True, separators=(",", ":"), default=str)
 
@@ -157,7 +180,7 @@ def _json_kind(value: Any) -> str:
         return "null"
     if isinstance(value, bool):
         return "a boolean"
-    if isinstance(value, int | float):
+    if isinstance(value, int | float | LongNumber):
         return "a number"
     if isinstance(value, str):
         return "a string"
@@ -171,7 +194,7 @@ def _reject_constant(name: str) -> Any:
 
 
 def _decoder() -> json.JSONDecoder:
-    return json.JSONDecoder(parse_constant=_reject_constant)
+    return json.JSONDecoder(parse_constant=_reject_constant, parse_int=_parse_int)
 
 
 def _json_error(error: Exception, *, with_line: bool) -> str:
