@@ -60,7 +60,7 @@ def print_summary(manifest: dict[str, Any], output: Path) -> None:
         console.print(
             f"near duplicates: {near.get('candidates', 0):,} candidate pairs, "
             f"{near.get('verified', 0):,} verified, "
-            f"{near.get('clusters', 0):,} clusters, {near.get('near_copy_removed', 0):,} removed"
+            f"{near.get('clusters', 0):,} clusters, {near.get('near_copy', 0):,} removed"
         )
     splits = Table(title="Splits", show_edge=False)
     for column in ("split", "documents", "tokens", "windows", "pad tokens", "shards"):
