@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import csv
 import os
+import sys
 import tempfile
 from collections.abc import Iterator
 from dataclasses import dataclass
@@ -270,19 +271,20 @@ def _read_entry(
         return
     file_format, gzipped = format_of(entry.source)
     fallback = check_fallback_encoding(config.fallback_encoding) if config.fallback_encoding else ""
-    verdict = examine_file(
-        entry.path,
-        gzipped=gzipped,
-        limit=config.max_file_bytes,
-        fallback=fallback,
-        text=file_format in _TEXT_FORMATS,
-    )
-    if not file_format and not verdict.rejection:
-        verdict_reason = "unsupported_format: no reader for this file name's suffix"
-    else:
-        verdict_reason = verdict.rejection
-    if verdict_reason:
-        yield _whole_file_row(entry.source, verdict_reason)
+    if file_format:
+        verdict = examine_file(
+            entry.path,
+            gzipped=gzipped,
+            limit=config.max_file_bytes,
+            fallback=fallback,
+            text=file_format in _TEXT_FORMATS,
+        )
+        rejection = verdict.rejection
+    else:  # only hashed, whatever its size: no reader will open it
+        verdict = examine_file(entry.path, gzipped=False, limit=sys.maxsize, fallback="", text=False)
+        rejection = verdict.rejection or "unsupported_format: no reader for this file name's suffix"
+    if rejection:
+        yield _whole_file_row(entry.source, rejection)
         yield InputFile(entry.source, verdict.size, verdict.xxh3_128, file_format, "", 1, 1)
         return
     records = rejected = blanks = 0
