@@ -186,3 +186,77 @@ def test_too_many_rejected_records_stop_the_run(tmp_path: Path) -> None:
     with pytest.raises(TooManyRejectedError, match=r"bad.jsonl:2: invalid_json"):
         run_pipeline(definition)
     assert not (tmp_path / "out").exists()
+
+
+def _planted() -> list[dict[str, Any]]:
+    data = json.loads((ROOT / "fixtures" / "ferry_planted.json").read_text(encoding="utf-8"))
+    planted: list[dict[str, Any]] = data["planted"]
+    return planted
+
+
+def test_every_planted_defect_shows_up_with_its_reason(demo_output: Path) -> None:
+    # The demo archive records what it planted (fixtures/ferry_planted.json, invented data):
+    # each planted defect must appear in the ledger or manifest as recorded there.
+    manifest = _manifest(demo_output)
+    rows = pq.read_table(demo_output / "ledger.parquet").to_pylist()
+    by_place = {(row["source"], row["line"]): row for row in rows}
+    by_id = {row["record_id"]: row for row in rows}
+    encodings = {item["path"]: item["encoding"] for item in manifest["inputs"]["files"]}
+    clean_counts = manifest["stages"]["clean"]
+    seen_kinds = Counter()
+    for entry in _planted():
+        row = by_place.get((entry["source"], entry["line"]))
+        kind = entry["kind"]
+        seen_kinds[kind] += 1
+        if kind in ("rejected", "empty"):
+            assert row is not None, entry
+            assert row["status"] == entry["status"], entry
+            assert row["reason"].split(":")[0] == entry["reason"], entry
+        elif kind == "exact_copy":
+            assert row is not None and row["status"] == "exact_copy", entry
+            original = by_place[(entry["copy_of_source"], entry["copy_of_line"])]
+            assert row["duplicate_of"] == original["record_id"], entry
+        elif kind == "fix":
+            assert row is not None, entry
+            assert clean_counts[entry["fix"]] >= 1, entry
+            if "expected_text" in entry:
+                assert row["text_hash"] == xxhash.xxh3_128(entry["expected_text"].encode()).hexdigest(), entry
+        elif kind == "encoding":
+            assert encodings[entry["source"]] == entry["encoding"], entry
+        elif kind == "near_pair":
+            other = by_place[(entry["other_source"], entry["other_line"])]
+            assert row is not None
+            together = row["cluster"] is not None and row["cluster"] == other["cluster"]
+            if entry["relation"] == "near":
+                assert together, entry
+                copy = row if row["status"] == "near_copy" else other
+                assert by_id[copy["duplicate_of"]]["status"] == "kept", entry
+            elif entry["relation"] == "distinct":
+                assert not together, entry
+    assert seen_kinds["rejected"] >= 7 and seen_kinds["exact_copy"] >= 10 and seen_kinds["near_pair"] >= 10
+
+
+def test_near_copies_never_straddle_splits_for_any_seed(archive: Path, tmp_path: Path) -> None:
+    # With action = "cluster" every member stays; a cluster must still sit in one split, whatever the seed.
+    import dataclasses
+
+    base = load_definition(DEMO)
+    for seed in (0, 1, 2, 3, 4):
+        definition = dataclasses.replace(
+            base.with_folders(input=archive, output=tmp_path / f"s{seed}"),
+            near=dataclasses.replace(base.near, action="cluster"),
+            split=dataclasses.replace(base.split, seed=seed),
+        )
+        output = run_pipeline(definition).output
+        rows = pq.read_table(output / "ledger.parquet").to_pylist()
+        split_of_cluster: dict[str, set[str]] = {}
+        for row in rows:
+            if row["cluster"] is not None and row["status"] == "kept":
+                split_of_cluster.setdefault(row["cluster"], set()).add(row["split"])
+        assert split_of_cluster, "the demo has near-duplicate clusters"
+        assert all(len(splits) == 1 for splits in split_of_cluster.values())
+        groups: dict[str, set[str]] = {}
+        for row in rows:
+            if row["group"] is not None and row["status"] == "kept":
+                groups.setdefault(row["group"], set()).add(row["split"])
+        assert all(len(splits) == 1 for splits in groups.values())
