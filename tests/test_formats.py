@@ -396,3 +396,50 @@ def test_reasons_are_known(tmp_path: Path) -> None:
     write(folder, "c.txt", b"\x00")
     rows, _ = read_all(folder)
     assert {row["reason"].split(":")[0] for row in rows} <= set(REASONS)
+
+
+# --- gzip inside every text format, hashes ----------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("name", "kind", "raw"),
+    [
+        ("g.jsonl.gz", "json", '{"text": "a"}\n\n{"text": "b"}\n'),
+        ("g.json.gz", "json", '[{"text": "a"}, {"text": "b"}, {"text": "c"}]'),
+        ("g.csv.gz", "csv", 'text,n\n"x\ny",1\nz,2\n'),
+    ],
+)
+def test_gzip_text_formats_match_hf_loaders(tmp_path: Path, name: str, kind: str, raw: str) -> None:
+    folder = tmp_path / "in"
+    path = write(folder, name, gzip.compress(raw.encode("utf-8")))
+    rows, files = read_all(folder)
+    reference = hf_rows(kind, path, tmp_path / "hf")  # HF loaders decompress .gz themselves
+    assert [row["text"] for row in rows] == [r["text"] for r in reference]
+    assert files[0].format == name.split(".")[1]
+
+
+def test_hashes_are_of_the_bytes_on_disk(tmp_path: Path) -> None:
+    import datasets
+
+    from corpusprep.hashing import hash_bytes, hash_file
+
+    folder = tmp_path / "in"
+    write(folder, "a.txt", "hash me")
+    datasets.Dataset.from_dict({"text": ["p", "q", "r"]}).save_to_disk(str(folder / "ds"), num_shards=2)
+    _, files = read_all(folder)
+    by_path = {info.path: info for info in files}
+    assert (by_path["a.txt"].size, by_path["a.txt"].xxh3_128) == hash_file(folder / "a.txt")
+    state = json.loads((folder / "ds" / "state.json").read_text())
+    data = b"".join((folder / "ds" / item["filename"]).read_bytes() for item in state["_data_files"])
+    assert (by_path["ds"].size, by_path["ds"].xxh3_128) == (len(data), hash_bytes(data))
+
+
+def test_input_folder_that_is_itself_a_saved_dataset(tmp_path: Path) -> None:
+    import datasets
+
+    datasets.Dataset.from_dict({"text": ["only", "two"]}).save_to_disk(str(tmp_path / "ds"))
+    rows, files = read_all(tmp_path / "ds")
+    assert [(row["record_id"], row["text"]) for row in rows] == [(".:1", "only"), (".:2", "two")]
+    assert files[0].path == "."
+    rows, files = read_all(tmp_path / "ds", ReadConfig(include=("**/*.json",)))
+    assert (rows, files) == ([], [])  # no folder pattern: not read, and its metadata is no record file
