@@ -276,6 +276,7 @@ def examine_file(path: str, *, gzipped: bool, limit: int, fallback: str, text: b
     size, hash and limit are checked (the content is binary, e.g. Parquet).
     """
     hasher = xxhash.xxh3_128()
+    size = 0
     try:
         size = os.stat(path).st_size
         with open(path, "rb") as raw:
@@ -284,7 +285,7 @@ def examine_file(path: str, *, gzipped: bool, limit: int, fallback: str, text: b
                 probe = _first_pass(hashed, gzipped=gzipped, limit=limit, size=size, text=text)
                 _drain(hashed)
     except OSError as error:
-        return Verdict(size=0, xxh3_128="", encoding="", rejection=f"unreadable: {_os_message(error)}")
+        return Verdict(size=size, xxh3_128="", encoding="", rejection=f"unreadable: {_os_message(error)}")
     digest = hasher.hexdigest()
     if probe.rejection or not text:
         return Verdict(size=size, xxh3_128=digest, encoding="", rejection=probe.rejection)
