@@ -111,6 +111,7 @@ def test_jsonl_malformed_records_each_get_a_row_with_their_line(tmp_path: Path) 
         ('{"text": "fine"}', None),
         ("{not json", "invalid_json"),
         ('{"text": NaN}', "invalid_json"),  # RFC 8259 §6: NaN and Infinity are not permitted
+        ('{"text": "x", "n": -Infinity}', "invalid_json"),
         ("[1, 2]", "not_an_object"),
         ('"just a string"', "not_an_object"),
         ('{"body": "no text key"}', "missing_text_field"),
