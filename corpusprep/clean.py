@@ -23,7 +23,8 @@ result is a fixed point, and cleaning is idempotent.
 
 Counts: for each step, 1 if the step changed the document in any round, else
 0, so the stage report says in how many documents each step changed something.
-For the ftfy steps "changed" is what ftfy's explanation lists for some line.
+For the ftfy steps, on a line ftfy has to look at closely, "changed" means
+listed in ftfy's explanation of a line it changed.
 
 The defaults repair encoding damage without rewriting legitimate typography:
 curly quotes, full-width CJK punctuation, ligatures and HTML entities stay as

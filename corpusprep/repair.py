@@ -65,6 +65,9 @@ _APPLIED_STEP_COUNTER = MappingProxyType(
         "uncurl_quotes": "uncurl_quotes",
         "fix_surrogates": "replace_surrogates",
         "remove_terminal_escapes": "remove_terminal_escapes",
+        # Off in the clean stage's settings (it has its own steps); named as ftfy names them.
+        "fix_line_breaks": "fix_line_breaks",
+        "remove_control_chars": "remove_control_chars",
     }
 )
 
@@ -192,13 +195,19 @@ def _counters_of_plan(plan: list[ftfy.ExplanationStep] | None) -> set[str]:
 
 def _repair_segment_fully(segment: str, settings: ftfy.TextFixerConfig) -> tuple[str, set[str]]:
     fixed, plan = ftfy.fix_and_explain(segment, settings._replace(explain=True))
-    return fixed, _counters_of_plan(plan)
+    # ftfy's plan can list encoding steps that changed nothing (U+FFFD read back as U+FFFD, a C1
+    # control that Windows-1252 leaves undefined), so an unchanged line counts no step.
+    return fixed, _counters_of_plan(plan) if fixed != segment else set()
 
 
 def repair_fully(text: str, settings: ftfy.TextFixerConfig) -> tuple[str, set[str]]:
     """ftfy on every line; the text equals ``ftfy.fix_text(text, settings)``.
 
-    Also returns the counter names of the steps ftfy's explanation lists.
+    (With ``fix_encoding`` on, that holds when its four sub-settings are on, as
+    in the clean stage: ftfy 6.3.1's ``fix_text`` ignores them, while the
+    :func:`ftfy.fix_and_explain` used here honours them.)
+
+    Also returns the counter names of the steps ftfy's explanation lists for the lines it changed.
 
     >>> settings = ftfy.TextFixerConfig(uncurl_quotes=False)
     >>> repair_fully("sch\\u00c3\\u00b6n\\n", settings)

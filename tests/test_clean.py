@@ -400,7 +400,47 @@ _TRICKY = (
     "\u200b\u200c\u200d\u2060\ufeff\u2028\u2029\u2018\u2019\u201c\u201d"
     "вЂГРСβΓΟāงéЯ中文\U0001f468\ud800\udc00\ud83d\udca9"
 )
+# Pieces whose combination makes new mojibake only after a step has run: NFC composes A + U+0303 into
+# U+00C3, removing a terminal escape or a control joins U+00C3 to U+00A9, NFKC turns U+FF21 into "A".
+_PIECES = (
+    "\u00c3",
+    "\u00a9",
+    "\u00b6",
+    "\u00c2",
+    "\u00a0",
+    "A\u0303",
+    "A",
+    "\uff21",
+    "\u0303",
+    "\x1b[0m",
+    "\x1b[1m",
+    "\x00",
+    "\u200b",
+    "\u00ad",
+    "\ufeff",
+    " ",
+    "\t",
+    "\n",
+    "\r\n",
+    "\r",
+    "sch",
+    "n",
+    "\u00e9",
+    "\u00e2\u20ac",
+    "\u2122",
+    "\x9d",
+    "\x85",
+    "&amp;",
+    "&EACUTE;",
+    "&#10;",
+    "\uff06amp;",
+    "\ufb01",
+    "\u2019",
+    "\ud83d",
+    "\udca9",
+)
 _TEXTS = st.one_of(
+    st.lists(st.sampled_from(_PIECES), max_size=12).map("".join),
     st.text(alphabet=st.sampled_from(_TRICKY), max_size=50),
     st.text(max_size=30).map(_mojibake),
     st.lists(st.sampled_from(["caf\u00e9", "na\u00efve", "\u2014", "\u201cq\u201d", "\u00e9"]), max_size=6)
@@ -457,6 +497,48 @@ def test_any_settings_fast_equals_slow_and_idempotent(text: str, config: CleanCo
     fixer = repair_settings(config)
     assert repair_quickly(text, fixer) == repair_fully(text, fixer)
     assert repair_fully(text, fixer)[0] == ftfy.fix_text(text, fixer)
+
+
+_FIXER_SETTINGS = st.builds(
+    ftfy.TextFixerConfig,
+    unescape_html=st.booleans(),
+    remove_terminal_escapes=st.booleans(),
+    fix_encoding=st.booleans(),
+    restore_byte_a0=st.booleans(),
+    replace_lossy_sequences=st.booleans(),
+    decode_inconsistent_utf8=st.booleans(),
+    fix_c1_controls=st.booleans(),
+    fix_latin_ligatures=st.booleans(),
+    fix_character_width=st.booleans(),
+    uncurl_quotes=st.booleans(),
+    fix_line_breaks=st.booleans(),
+    fix_surrogates=st.booleans(),
+    remove_control_chars=st.booleans(),
+    normalization=st.sampled_from(["NFC", "NFKC", "NFD", "NFKD", None]),
+    max_decode_length=st.just(sys.maxsize),
+    explain=st.just(False),
+).map(
+    # ftfy 6.3.1's fix_text (explain off) runs fix_encoding with ftfy's default sub-settings, whatever
+    # the given ones; fix_and_explain uses the given ones. They agree when the sub-settings are on.
+    lambda fixer: (
+        fixer._replace(
+            restore_byte_a0=True,
+            replace_lossy_sequences=True,
+            decode_inconsistent_utf8=True,
+            fix_c1_controls=True,
+        )
+        if fixer.fix_encoding
+        else fixer
+    )
+)
+
+
+@settings(max_examples=1500, derandomize=True, database=None, deadline=None)
+@given(_TEXTS, _FIXER_SETTINGS)
+def test_fast_repair_equals_ftfy_for_any_ftfy_settings(text: str, fixer: ftfy.TextFixerConfig) -> None:
+    # Reference: ftfy.fix_text itself, with any combination of its boolean settings.
+    assert repair_fully(text, fixer)[0] == ftfy.fix_text(text, fixer)
+    assert repair_quickly(text, fixer) == repair_fully(text, fixer)
 
 
 # --- batches -------------------------------------------------------------------------------------------
