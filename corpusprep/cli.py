@@ -162,6 +162,67 @@ def inspect(
     _guard(debug, action)
 
 
+@app.command()
+def audit(
+    output: Annotated[Path, typer.Argument(help="A finished output folder.")],
+    against: Annotated[
+        Path | None,
+        typer.Option(
+            "--against",
+            help="An outside evaluation set (.jsonl, .json, .csv, .parquet, or .txt with one item per line; "
+            "optionally .gz) to compare with train.",
+        ),
+    ] = None,
+    text_field: Annotated[
+        str, typer.Option("--text-field", help="Field or column holding the text in --against.")
+    ] = "text",
+    ngram: Annotated[
+        int, typer.Option("--ngram", min=1, max=1000, help="Words per n-gram of the overlap check.")
+    ] = 13,
+    json_output: Annotated[
+        bool, typer.Option("--json", help="Print one JSON document instead of tables.")
+    ] = False,
+    examples: Annotated[int, typer.Option("--examples", min=0, help="Findings shown per kind.")] = 5,
+    skip_ngrams: Annotated[
+        bool, typer.Option("--skip-ngrams", help="Leave out the n-gram check (it reads every shard).")
+    ] = False,
+    quiet: Annotated[bool, typer.Option("--quiet", help="No progress bars.")] = False,
+    debug: DebugOption = False,
+) -> None:
+    """Check an output for damage (files, hashes, counts) and leakage between splits or with --against.
+
+    Exit codes: 0 clean, 3 leakage found, 4 output damaged (wins over leakage), 2 bad usage.
+    """
+
+    def action() -> int:
+        from corpusprep.audit import (
+            AuditConfig,
+            AuditInputError,
+            NotAnOutputError,
+            audit_output,
+            print_report,
+        )
+        from corpusprep.manifest import dump_json
+        from corpusprep.summary import progress_printer
+
+        try:
+            config = AuditConfig(ngram=ngram, skip_ngrams=skip_ngrams, against=against, text_field=text_field)
+            with progress_printer(enabled=not quiet) as progress:
+                report = audit_output(output, config, progress=progress)
+        except (NotAnOutputError, AuditInputError) as error:
+            if debug:
+                traceback.print_exc()
+            _fail(str(error), EXIT_USAGE)
+        if json_output:
+            typer.echo(dump_json(report.to_json(examples=None)), nl=False)
+        else:
+            print_report(report, examples=examples)
+        return {"clean": EXIT_OK, "leakage": EXIT_LEAKAGE, "damaged": EXIT_DAMAGED}[report.outcome]
+
+    code = _guard(debug, action)
+    raise typer.Exit(code)
+
+
 def main(argv: list[str] | None = None) -> Any:
     """Console-script entry point."""
     try:

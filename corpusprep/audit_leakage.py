@@ -1,0 +1,400 @@
+"""The leakage half of the audit: does anything of validation or test also sit in train?
+
+Checks on the output alone (each only when the files it reads passed the
+integrity checks):
+
+``shared_text_hash``
+    kept documents in two splits with the same ledger ``text_hash`` (XXH3-128
+    of the cleaned text);
+``group_across_splits`` / ``cluster_across_splits``
+    a ledger ``group`` or near-duplicate ``cluster`` with kept members in two
+    splits;
+``near_copy_across_splits``
+    MinHash near copies found afresh: the rows of ``signatures.npy`` (one per
+    kept ledger row, in ledger order) go through LSH with the run's bands and
+    rows (:func:`corpusprep.lsh.candidate_pairs`); a candidate pair of two
+    splits whose signature estimate is >= ``near.threshold`` is a finding;
+``shared_ngram``
+    a validation or test document sharing at least one word n-gram (13 by
+    default, Brown et al. 2020 App. C, from memory) with train; see
+    :mod:`corpusprep.ngrams`. The token stream of each split is rebuilt from
+    its shards; the evaluation side's n-gram hashes are held as one sorted
+    ``uint64`` array, and train is streamed through memory-mapped shards in
+    chunks, so memory follows the evaluation side, not train.
+
+Against an outside evaluation set (``against_*`` kinds): each item is cleaned
+with the output's clean settings, then compared with train by exact text hash,
+by MinHash near copy (same settings, LSH query against the train signatures,
+verified by signature estimate) and by shared n-gram.
+
+A ``stream_mismatch`` (damage) is reported when the documents found in a
+split's token stream do not have the token counts the ledger gives, in the
+packing order of :func:`corpusprep.pack.document_order`.
+"""
+
+from __future__ import annotations
+
+from collections import defaultdict
+from collections.abc import Callable, Iterator, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+
+from corpusprep.audit_integrity import DAMAGE, LEAKAGE, Finding, ShardFile
+from corpusprep.lsh import band_keys, candidate_pairs
+from corpusprep.minhash import EMPTY_VALUE, pair_similarity
+from corpusprep.ngrams import HashedChunk, StreamTables, complete_documents, hash_stream_chunk, hash_texts
+from corpusprep.pack import document_order
+from corpusprep.schema import KEPT
+
+__all__ = [
+    "EVALUATION_SPLITS",
+    "NgramResult",
+    "kept_rows",
+    "near_across_splits",
+    "ngram_overlap",
+    "packed_rows",
+    "query_near",
+    "shared_keys",
+    "split_stream",
+]
+
+EVALUATION_SPLITS = ("validation", "test")
+Progress = Callable[[str, int, "int | None"], None]
+
+
+def _leak(kind: str, message: str, **details: Any) -> Finding:
+    return Finding(kind=kind, severity=LEAKAGE, message=message, details=details)
+
+
+def kept_rows(ledger: pa.Table) -> np.ndarray:
+    """Ledger row numbers of the kept documents, in ledger order."""
+    status = np.asarray(ledger.column("status").to_pylist(), dtype=object)
+    return np.flatnonzero(status == KEPT)
+
+
+def shared_keys(ledger: pa.Table, column: str, kind: str) -> list[Finding]:
+    """Values of ``column`` held by kept documents of two or more splits."""
+    splits: dict[str, set[str]] = defaultdict(set)
+    members: dict[str, list[dict[str, str]]] = defaultdict(list)
+    rows = ledger.select(["record_id", "status", "split", column]).to_pylist()
+    for row in rows:
+        value = row[column]
+        if row["status"] != KEPT or value is None:
+            continue
+        splits[value].add(row["split"])
+        members[value].append({"record_id": row["record_id"], "split": row["split"]})
+    found = []
+    for value in sorted(splits):
+        if len(splits[value]) > 1:
+            names = ", ".join(sorted(splits[value]))
+            found.append(
+                _leak(
+                    kind,
+                    f"{column} {value!r} has kept documents in {names}",
+                    key=value,
+                    documents=members[value],
+                )
+            )
+    return found
+
+
+def near_across_splits(
+    signatures: np.ndarray, ledger: pa.Table, *, bands: int, rows: int, threshold: float, bucket_limit: int
+) -> tuple[list[Finding], dict[str, int]]:
+    """Near copies between splits among the kept documents, found afresh by LSH on their signatures."""
+    kept = kept_rows(ledger)
+    split_of = np.asarray(ledger.column("split").to_pylist(), dtype=object)[kept]
+    record_of = np.asarray(ledger.column("record_id").to_pylist(), dtype=object)[kept]
+    pairs = candidate_pairs(signatures, bands, rows, bucket_limit=bucket_limit)
+    across = pairs[split_of[pairs[:, 0]] != split_of[pairs[:, 1]]] if pairs.size else pairs
+    similarity = pair_similarity(signatures, across[:, 0], across[:, 1])
+    verified = np.flatnonzero(similarity >= threshold)
+    found = [
+        _leak(
+            "near_copy_across_splits",
+            f"{record_of[left]} ({split_of[left]}) and {record_of[right]} ({split_of[right]}) are near "
+            f"copies (signature estimate {similarity[index]:.3f} >= {threshold})",
+            documents=[
+                {"record_id": record_of[left], "split": split_of[left]},
+                {"record_id": record_of[right], "split": split_of[right]},
+            ],
+            similarity=float(similarity[index]),
+        )
+        for index in verified.tolist()
+        for left, right in [across[index].tolist()]
+    ]
+    return found, {"candidates": len(pairs), "across_splits": len(across), "verified": len(found)}
+
+
+def query_near(
+    train: np.ndarray,
+    queries: np.ndarray,
+    *,
+    bands: int,
+    rows: int,
+    threshold: float,
+    chunk_rows: int = 65536,
+) -> list[tuple[int, int, float]]:
+    """``(train_row, query_row, estimate)`` for query signatures near a train signature store.
+
+    Each band's keys (:func:`corpusprep.lsh.band_keys`) of the queries are
+    sorted once; the train store (may be a ``np.memmap``) is read in chunks
+    and looked up with ``np.searchsorted``. Candidates are verified by the
+    signature estimate; empty signatures take part in nothing.
+    """
+    live = np.flatnonzero(~np.all(queries == EMPTY_VALUE, axis=1))
+    codes: list[np.ndarray] = []
+    for band in range(bands):
+        columns = slice(band * rows, (band + 1) * rows)
+        query_keys = band_keys(queries[live, columns], band)
+        order = np.argsort(query_keys, kind="stable")
+        sorted_keys = query_keys[order]
+        for begin in range(0, train.shape[0], chunk_rows):
+            block = np.asarray(train[begin : begin + chunk_rows])
+            nonempty = np.flatnonzero(~np.all(block == EMPTY_VALUE, axis=1))
+            keys = band_keys(block[nonempty][:, columns], band)
+            low = np.searchsorted(sorted_keys, keys, side="left")
+            high = np.searchsorted(sorted_keys, keys, side="right")
+            counts = high - low
+            if not counts.any():
+                continue
+            train_rows = np.repeat(nonempty + begin, counts)
+            offsets = np.arange(counts.sum()) - np.repeat(np.cumsum(counts) - counts, counts)
+            query_rows = live[order[np.repeat(low, counts) + offsets]]
+            codes.append((train_rows.astype(np.uint64) << np.uint64(32)) | query_rows.astype(np.uint64))
+    if not codes:
+        return []
+    unique = np.unique(np.concatenate(codes))
+    train_rows = (unique >> np.uint64(32)).astype(np.int64)
+    query_rows = (unique & np.uint64(0xFFFFFFFF)).astype(np.int64)
+    equal = np.count_nonzero(np.asarray(train[train_rows]) == queries[query_rows], axis=1)
+    estimate = equal / train.shape[1]
+    keep = np.flatnonzero(estimate >= threshold)
+    return [(int(train_rows[i]), int(query_rows[i]), float(estimate[i])) for i in keep.tolist()]
+
+
+# --------------------------------------------------------------------------- token streams
+def split_stream(shards: Sequence[ShardFile], *, pad_id: int, chunk_rows: int) -> Iterator[np.ndarray]:
+    """The token stream of a split, rebuilt from its shards chunk by chunk.
+
+    Consecutive windows share one token (window ``k`` is
+    ``stream[k*L : k*L + L + 1]``), so the stream is the first window followed
+    by every window without its first token. Pad ids at the very end (the
+    padded last window) are not part of the stream.
+    """
+    last_shard = len(shards) - 1
+    for number, shard in enumerate(shards):
+        array = np.load(shard.path, mmap_mode="r", allow_pickle=False)
+        for begin in range(0, shard.rows, chunk_rows):
+            block = np.asarray(array[begin : begin + chunk_rows])
+            tokens = block[:, 1:].ravel()
+            if number == 0 and begin == 0:
+                tokens = np.concatenate((block[0, :1], tokens))
+            if number == last_shard and begin + chunk_rows >= shard.rows:
+                real = np.flatnonzero(tokens != pad_id)
+                tokens = tokens[: int(real[-1]) + 1] if real.size else tokens[:0]
+            yield tokens
+        del array
+
+
+def packed_rows(ledger: pa.Table, split: str, seed: int) -> np.ndarray:
+    """Ledger rows of the documents of ``split`` in packing order (stream position -> ledger row)."""
+    status = np.asarray(ledger.column("status").to_pylist(), dtype=object)
+    names = np.asarray(ledger.column("split").to_pylist(), dtype=object)
+    rows = np.flatnonzero((status == KEPT) & (names == split))
+    ordered: np.ndarray = rows[document_order(len(rows), seed, split)]
+    return ordered
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class _Side:
+    """One evaluation source: a split of the output, or the outside items."""
+
+    name: str
+    kind: str
+    record_ids: list[str]
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class NgramResult:
+    """Findings and statistics of the n-gram check."""
+
+    findings: list[Finding]
+    statistics: dict[str, Any]
+
+
+class _Scan:
+    """The stream tables and settings shared by every pass of :func:`ngram_overlap`."""
+
+    def __init__(self, tables: StreamTables, ngram: int, pad_id: int, chunk_rows: int) -> None:
+        self.tables, self.ngram, self.pad_id, self.chunk_rows = tables, ngram, pad_id, chunk_rows
+
+    def chunks(self, shards: Sequence[ShardFile]) -> Iterator[HashedChunk]:
+        stream = split_stream(shards, pad_id=self.pad_id, chunk_rows=self.chunk_rows)
+        for tokens in complete_documents(stream, self.tables.end_of_document):
+            yield hash_stream_chunk(tokens, self.tables, self.ngram)
+
+
+def _stream_findings(
+    split: str, lengths: np.ndarray, expected: np.ndarray, record_ids: list[str], tail: str
+) -> list[Finding]:
+    partial_allowed = tail == "drop"
+    if lengths.size == expected.size and np.array_equal(lengths, expected):
+        return []
+    if partial_allowed and 0 < lengths.size <= expected.size:
+        head = lengths.size - 1
+        if np.array_equal(lengths[:head], expected[:head]) and lengths[head] <= expected[head]:
+            return []
+    common = min(lengths.size, expected.size)
+    differ = np.flatnonzero(lengths[:common] != expected[:common])
+    where = int(differ[0]) if differ.size else common
+    record = record_ids[where] if where < len(record_ids) else None
+    return [
+        Finding(
+            kind="stream_mismatch",
+            severity=DAMAGE,
+            message=(
+                f"split {split}: the shards hold {lengths.size} documents, the ledger {expected.size}; "
+                f"first difference at packed document {where} (ledger record {record})"
+            ),
+            details={
+                "split": split,
+                "position": where,
+                "record_id": record,
+                "expected": int(expected[where]) if where < expected.size else None,
+                "found": int(lengths[where]) if where < lengths.size else None,
+            },
+        )
+    ]
+
+
+def ngram_overlap(
+    *,
+    shards: dict[str, list[ShardFile]],
+    packed: dict[str, np.ndarray],
+    ledger: pa.Table,
+    tables: StreamTables,
+    ngram: int,
+    pad_id: int,
+    tail: str,
+    against: Sequence[tuple[str, str]] = (),
+    chunk_rows: int = 4096,
+    train_total: int | None = None,
+    progress: Progress | None = None,
+) -> NgramResult:
+    """Long n-gram overlap of validation, test and the outside items with train.
+
+    ``shards`` maps each split to its verified shards, ``packed`` each split to
+    its ledger rows in packing order, ``against`` holds ``(item_id, cleaned
+    text)`` pairs; ``train_total`` (train tokens, for the progress bar) may be None.
+    Also checks each split's documents against the ledger's
+    token counts (``stream_mismatch``).
+    """
+    report = progress or (lambda stage, done, total: None)
+    scan = _Scan(tables, ngram, pad_id, chunk_rows)
+    record_ids = np.asarray(ledger.column("record_id").to_pylist(), dtype=object)
+    ledger_tokens = np.asarray([value or 0 for value in ledger.column("tokens").to_pylist()], dtype=np.int64)
+    findings: list[Finding] = []
+    sides = [
+        _Side(name=split, kind="shared_ngram", record_ids=record_ids[packed[split]].tolist())
+        for split in EVALUATION_SPLITS
+        if split in shards
+    ]
+    if against:
+        sides.append(_Side(name="against", kind="against_ngram", record_ids=[item for item, _ in against]))
+
+    def side_chunks(side: _Side) -> Iterator[HashedChunk]:
+        if side.name == "against":
+            for begin in range(0, len(against), 1024):
+                yield hash_texts([text for _, text in against[begin : begin + 1024]], ngram)
+        else:
+            yield from scan.chunks(shards[side.name])
+
+    # Pass 1: the evaluation side's distinct n-gram hashes, and the stream check of those splits.
+    parts: list[np.ndarray] = []
+    for side in sides:
+        lengths = []
+        for chunk in side_chunks(side):
+            parts.append(np.unique(chunk.hashes))
+            lengths.append(chunk.lengths)
+        if side.name != "against":
+            found = np.concatenate(lengths) if lengths else np.zeros(0, np.int64)
+            findings += _stream_findings(
+                side.name, found, ledger_tokens[packed[side.name]], side.record_ids, tail
+            )
+    evaluation = np.unique(np.concatenate(parts)) if parts else np.zeros(0, dtype=np.uint64)
+
+    # Pass 2: stream train; remember the first train document holding each evaluation n-gram.
+    first_train = np.full(evaluation.size, -1, dtype=np.int64)
+    train_documents = 0
+    train_tokens = 0
+    train_lengths = []
+    for chunk in scan.chunks(shards.get("train", [])):
+        if evaluation.size and chunk.hashes.size:
+            position = np.minimum(np.searchsorted(evaluation, chunk.hashes), evaluation.size - 1)
+            hit = np.flatnonzero(evaluation[position] == chunk.hashes)
+            if hit.size:
+                indices, first = np.unique(position[hit], return_index=True)
+                documents = chunk.document[chunk.first_word[hit[first]]] + train_documents
+                fresh = first_train[indices] < 0
+                first_train[indices[fresh]] = documents[fresh]
+        train_documents += chunk.documents
+        train_tokens += int(chunk.lengths.sum())
+        train_lengths.append(chunk.lengths)
+        report("n-grams", train_tokens, train_total)
+    if "train" in shards:
+        found = np.concatenate(train_lengths) if train_lengths else np.zeros(0, np.int64)
+        train_ids = record_ids[packed["train"]].tolist()
+        findings += _stream_findings("train", found, ledger_tokens[packed["train"]], train_ids, tail)
+    train_record = record_ids[packed["train"]] if "train" in packed else np.zeros(0, dtype=object)
+
+    # Pass 3: which evaluation documents hold a matched n-gram; one example n-gram each.
+    statistics: dict[str, Any] = {
+        "ngram": ngram,
+        "train_documents": train_documents,
+        "train_tokens": train_tokens,
+        "evaluation_distinct_ngrams": int(evaluation.size),
+        "matched_distinct_ngrams": int(np.count_nonzero(first_train >= 0)),
+        "sides": {},
+    }
+    for side in sides:
+        documents = tested = flagged = 0
+        for chunk in side_chunks(side):
+            if chunk.hashes.size and evaluation.size:
+                position = np.minimum(np.searchsorted(evaluation, chunk.hashes), evaluation.size - 1)
+                train_of = np.where(evaluation[position] == chunk.hashes, first_train[position], -1)
+            else:
+                train_of = np.zeros(0, dtype=np.int64)
+            owner = chunk.document[chunk.first_word]
+            tested += int(np.unique(owner).size)
+            matched = np.flatnonzero(train_of >= 0)  # owner is non-decreasing: n-grams come in word order
+            owners, starts, counts = np.unique(owner[matched], return_index=True, return_counts=True)
+            for document, start, count in zip(owners.tolist(), starts.tolist(), counts.tolist(), strict=True):
+                example = int(matched[start])
+                train_document = int(train_of[example])
+                record = side.record_ids[documents + document]
+                text = chunk.ngram_text(example)
+                findings.append(
+                    _leak(
+                        side.kind,
+                        f"{record} ({side.name}) shares {count} {ngram}-gram(s) with train, e.g. "
+                        f"{text!r} (also in {train_record[train_document]})",
+                        split=side.name,
+                        record_id=record,
+                        shared_ngrams=int(count),
+                        ngram_text=text,
+                        train_record_id=train_record[train_document],
+                    )
+                )
+                flagged += 1
+            documents += chunk.documents
+        statistics["sides"][side.name] = {
+            "documents": documents,
+            "documents_with_ngrams": tested,
+            "documents_sharing_ngrams": flagged,
+            "fraction": flagged / documents if documents else 0.0,
+        }
+    return NgramResult(findings=findings, statistics=statistics)

@@ -1,0 +1,398 @@
+"""Word n-grams of a token stream, hashed with NumPy, for the long-overlap leakage check.
+
+Normalisation
+-------------
+Brown et al. 2020 ("Language Models are Few-Shot Learners", App. C; the rule
+is quoted from memory, not checked against the paper here) count overlap in
+13-grams of words after lowercasing, ignoring punctuation and splitting on
+whitespace. Here that is, exactly:
+
+1. :meth:`str.lower`;
+2. every punctuation character (Unicode general category ``P*``) is replaced
+   by a space, so it separates words (our reading of "ignored"; the same
+   choice as the near-duplicate view of :mod:`corpusprep.shingles`);
+3. :meth:`str.split` with no argument (Python's whitespace).
+
+:func:`normal_words` is that rule in plain Python and the reference of every
+fast path.
+
+Hashes
+------
+Word and n-gram hashes are 64-bit and computed with wrapping ``uint64``
+arithmetic so that a whole chunk of a token stream is hashed by a handful of
+array operations, with no Python work per word:
+
+* a word of UTF-8 bytes ``b_0 .. b_{m-1}`` first gets the polynomial
+  ``sum_i T[b_i] * P^(m-1-i) mod 2^64``, where ``T`` holds 256 odd 64-bit
+  constants (XXH3-64 of ``b"ngram-byte:<value>"``) and ``P`` is an odd
+  constant. Because ``P`` is odd it has an inverse ``Q`` modulo ``2^64``, so the
+  polynomial of bytes ``s..e`` of a chunk is ``P^e * (S[e] - S[s-1])`` with the
+  prefix sums ``S[i] = sum_{j<=i} T[b_j] * Q^j`` (one ``cumsum``). The word hash
+  is the SplitMix64 finaliser (Steele, Lea & Flood 2014) of the polynomial
+  XOR ``m * G``;
+* an n-gram of word hashes ``w_0 .. w_{n-1}`` gets the finaliser of
+  ``sum_j w_j * R^(n-1-j) mod 2^64`` (``n`` multiply-adds over the word array).
+
+Equal n-grams always get equal hashes, so no overlap is ever missed. Distinct
+n-grams collide with probability about ``2^-64`` per pair for ordinary text;
+polynomial hashing modulo ``2^64`` is known to be defeated by specially built
+strings (Thue-Morse sequences; cited from memory), which is why the audit
+shows every reported n-gram as text. :func:`ngram_hashes_scalar` computes the
+same values with Python integers; the tests hold the two together.
+
+Token streams
+-------------
+With the byte tokenizer the stream of a split is UTF-8 bytes, special ids
+(256 and up) between documents. Documents made only of ASCII bytes are
+normalised by table look-up (tables built from ``str.lower``,
+``str.isspace`` and :mod:`unicodedata` for the 128 ASCII characters, so they
+agree with the rule by construction); a document holding any byte >= 128 is
+decoded and normalised by :func:`normal_words`. For any other tokenizer every
+document is decoded with its ``decode`` function and normalised in Python.
+"""
+
+from __future__ import annotations
+
+import functools
+import sys
+import types
+import unicodedata
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import xxhash
+
+__all__ = [
+    "DEFAULT_NGRAM",
+    "HashedChunk",
+    "StreamTables",
+    "complete_documents",
+    "hash_normalised",
+    "hash_stream_chunk",
+    "hash_texts",
+    "ngram_hashes_scalar",
+    "normal_text",
+    "normal_words",
+    "word_hash_scalar",
+]
+
+#: Brown et al. 2020, App. C (from memory): 13-grams.
+DEFAULT_NGRAM = 13
+
+_MASK = (1 << 64) - 1
+_P = 0x9E3779B97F4A7C15  # odd: 2^64 / golden ratio
+_Q = pow(_P, -1, 1 << 64)
+_G = 0xC2B2AE3D27D4EB4F
+_R = 0x165667B19E3779F9
+_PUNCTUATION_SCAN_END = 0x20000  # no P* code point beyond plane 1 in Unicode 14 (Python 3.11)
+_SPACE = 0x20
+
+
+@functools.cache
+def _punctuation_table() -> Mapping[int, str]:
+    """Read-only ``str.translate`` table: every ``P*`` code point becomes a space."""
+    table = {
+        code: " "
+        for code in range(min(_PUNCTUATION_SCAN_END, sys.maxunicode + 1))
+        if unicodedata.category(chr(code)).startswith("P")
+    }
+    return types.MappingProxyType(table)
+
+
+def normal_words(text: str) -> list[str]:
+    """The words of ``text`` after lowercasing and ignoring punctuation (Brown et al. 2020, App. C).
+
+    >>> normal_words("The Ferry's  timetable -- REVISED, again!")
+    ['the', 'ferry', 's', 'timetable', 'revised', 'again']
+    """
+    return text.lower().translate(_punctuation_table()).split()
+
+
+def normal_text(text: str) -> str:
+    """The normalised words of ``text`` joined by single spaces.
+
+    >>> normal_text("  Dock B; (closed)\\n")
+    'dock b closed'
+    """
+    return " ".join(normal_words(text))
+
+
+# --------------------------------------------------------------------------- scalar reference
+def _mix_int(value: int) -> int:
+    value &= _MASK
+    value = ((value ^ (value >> 30)) * 0xBF58476D1CE4E5B9) & _MASK
+    value = ((value ^ (value >> 27)) * 0x94D049BB133111EB) & _MASK
+    return value ^ (value >> 31)
+
+
+@functools.cache
+def _byte_constants() -> tuple[int, ...]:
+    return tuple(xxhash.xxh3_64_intdigest(b"ngram-byte:%d" % value) | 1 for value in range(256))
+
+
+def word_hash_scalar(word: bytes) -> int:
+    """Hash of one normalised word (its UTF-8 bytes), with Python integers."""
+    constants = _byte_constants()
+    poly = 0
+    for byte in word:
+        poly = (poly * _P + constants[byte]) & _MASK
+    return _mix_int(poly ^ ((len(word) * _G) & _MASK))
+
+
+def ngram_hashes_scalar(text: str, ngram: int = DEFAULT_NGRAM) -> list[int]:
+    """Hashes of the word n-grams of ``text``, in order, with Python integers (the reference)."""
+    words = [word_hash_scalar(word.encode("utf-8")) for word in normal_words(text)]
+    out = []
+    for start in range(len(words) - ngram + 1):
+        poly = 0
+        for value in words[start : start + ngram]:
+            poly = (poly * _R + value) & _MASK
+        out.append(_mix_int(poly))
+    return out
+
+
+# --------------------------------------------------------------------------- vectorised core
+def _mix(values: np.ndarray) -> np.ndarray:
+    z = values ^ (values >> np.uint64(30))
+    z *= np.uint64(0xBF58476D1CE4E5B9)
+    z ^= z >> np.uint64(27)
+    z *= np.uint64(0x94D049BB133111EB)
+    z ^= z >> np.uint64(31)
+    mixed: np.ndarray = z
+    return mixed
+
+
+def _powers(base: int, count: int) -> np.ndarray:
+    """``base^0 .. base^(count-1)`` modulo 2^64."""
+    values = np.full(count, base, dtype=np.uint64)
+    if count:
+        values[0] = 1
+    return np.cumprod(values, dtype=np.uint64)
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class HashedChunk:
+    """The words and n-grams of a run of whole documents (one chunk of a stream).
+
+    ``data`` holds the normalised bytes, ``starts``/``ends`` the first and last
+    byte of each word, ``document`` the chunk-local document of each word;
+    ``hashes[i]`` is the n-gram that begins at word ``first_word[i]``, inside
+    document ``document[first_word[i]]``. ``documents`` counts the documents of
+    the chunk (including those with no words) and ``lengths`` their token counts
+    without special tokens.
+    """
+
+    data: np.ndarray
+    starts: np.ndarray
+    ends: np.ndarray
+    document: np.ndarray
+    hashes: np.ndarray
+    first_word: np.ndarray
+    documents: int
+    lengths: np.ndarray
+    ngram: int
+
+    def ngram_text(self, index: int) -> str:
+        """The normalised text of the ``index``-th n-gram of the chunk."""
+        first = int(self.first_word[index])
+        words = (
+            self.data[int(self.starts[k]) : int(self.ends[k]) + 1].tobytes().decode("utf-8", "replace")
+            for k in range(first, first + self.ngram)
+        )
+        return " ".join(words)
+
+
+def hash_normalised(
+    data: np.ndarray, separator: np.ndarray, boundary: np.ndarray, ngram: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Word spans and n-gram hashes of normalised bytes.
+
+    ``data`` (uint8) are lowercase bytes; ``separator`` marks bytes between
+    words; ``boundary`` marks document ends (they must also be separators).
+    Returns ``starts, ends, word_document, hashes, first_word``; n-grams never
+    cross a boundary.
+    """
+    if ngram < 1:
+        raise ValueError(f"ngram = {ngram}: must be at least 1")
+    size = data.size
+    is_word = ~separator
+    before = np.concatenate(([False], is_word[:-1])) if size else is_word
+    after = np.concatenate((is_word[1:], [False])) if size else is_word
+    starts = np.flatnonzero(is_word & ~before)
+    ends = np.flatnonzero(is_word & ~after)
+    boundaries = np.cumsum(boundary, dtype=np.int64)
+    word_document = boundaries[starts] if starts.size else np.zeros(0, dtype=np.int64)
+    if starts.size:
+        constants = np.array(_byte_constants(), dtype=np.uint64)
+        terms = constants[data] * _powers(_Q, size)
+        prefix = np.cumsum(terms, dtype=np.uint64)
+        below = np.where(starts > 0, prefix[np.maximum(starts - 1, 0)], np.uint64(0))
+        poly = (prefix[ends] - below) * _powers(_P, size)[ends]
+        lengths = (ends - starts + 1).astype(np.uint64)
+        words = _mix(poly ^ (lengths * np.uint64(_G)))
+    else:
+        words = np.zeros(0, dtype=np.uint64)
+    count = words.size - ngram + 1
+    if count <= 0:
+        empty = np.zeros(0, dtype=np.int64)
+        return starts, ends, word_document, np.zeros(0, dtype=np.uint64), empty
+    accumulated = words[:count].copy()
+    factor = np.uint64(_R)
+    for offset in range(1, ngram):
+        accumulated *= factor
+        accumulated += words[offset : offset + count]
+    valid = word_document[:count] == word_document[ngram - 1 : ngram - 1 + count]
+    first_word = np.flatnonzero(valid)
+    return starts, ends, word_document, _mix(accumulated[first_word]), first_word
+
+
+def _finish(
+    data: np.ndarray, separator: np.ndarray, boundary: np.ndarray, lengths: np.ndarray, ngram: int
+) -> HashedChunk:
+    starts, ends, document, hashes, first_word = hash_normalised(data, separator, boundary, ngram)
+    return HashedChunk(
+        data=data,
+        starts=starts,
+        ends=ends,
+        document=document,
+        hashes=hashes,
+        first_word=first_word,
+        documents=int(lengths.size),
+        lengths=lengths,
+        ngram=ngram,
+    )
+
+
+def hash_texts(texts: Sequence[str], ngram: int = DEFAULT_NGRAM) -> HashedChunk:
+    """Words and n-grams of whole texts (each text one document), normalised in Python."""
+    data, separator, boundary = _encode_normal([normal_text(text).encode("utf-8") for text in texts])
+    lengths = np.array([len(text) for text in texts], dtype=np.int64)
+    return _finish(data, separator, boundary, lengths, ngram)
+
+
+def _encode_normal(normal: list[bytes]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Normalised documents as one byte array, a space after each (a separator and a boundary)."""
+    joined = b"".join(item + b" " for item in normal)
+    data = np.frombuffer(joined, dtype=np.uint8)
+    separator = data == _SPACE
+    boundary = np.zeros(data.size, dtype=bool)
+    if normal:
+        boundary[np.cumsum([len(item) + 1 for item in normal]) - 1] = True
+    return data, separator, boundary
+
+
+# --------------------------------------------------------------------------- token streams
+@dataclass(frozen=True, slots=True, kw_only=True)
+class StreamTables:
+    """How the ids of a split's token stream become normalised bytes.
+
+    ``end_of_document`` ends a document; every id in ``specials`` (the end and
+    begin of document and pad) separates words and is not text. With
+    ``byte_ids`` true, ids 0..255 are UTF-8 bytes; otherwise ``decode`` turns
+    the ids of one document into text.
+    """
+
+    end_of_document: int
+    specials: frozenset[int]
+    byte_ids: bool
+    decode: Callable[[list[int]], str] | None = None
+
+    def lookup(self, size: int) -> tuple[np.ndarray, np.ndarray]:
+        """Per id below ``size``: its lowercase byte and whether it separates words (byte tokenizer)."""
+        lower = np.full(size, _SPACE, dtype=np.uint8)
+        separator = np.ones(size, dtype=bool)
+        for value in range(min(size, 128)):
+            char = chr(value)
+            lower[value] = ord(char.lower())
+            separator[value] = char.isspace() or unicodedata.category(char).startswith("P")
+        for value in range(128, min(size, 256)):
+            lower[value] = value
+            separator[value] = False
+        return lower, separator
+
+
+def complete_documents(chunks: Iterable[np.ndarray], end_of_document: int) -> Iterator[np.ndarray]:
+    """Re-cut stream chunks so that each ends just after an end-of-document id.
+
+    The part after the last end-of-document id waits for the next chunk; the
+    final remainder (a stream that does not end with one) is yielded last.
+    Memory is one chunk plus the longest document.
+    """
+    carry = np.zeros(0, dtype=np.int64)
+    for chunk in chunks:
+        tokens = np.concatenate((carry, chunk)) if carry.size else np.asarray(chunk)
+        ends = np.flatnonzero(tokens == end_of_document)
+        if ends.size == 0:
+            carry = tokens
+            continue
+        cut = int(ends[-1]) + 1
+        yield tokens[:cut]
+        carry = tokens[cut:]
+    if carry.size:
+        yield carry
+
+
+def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> HashedChunk:
+    """Words and n-grams of a run of documents of a token stream (see :func:`complete_documents`).
+
+    Document ``k`` of the chunk is the ``k``-th run ended by the
+    end-of-document id (a last run without one counts as a document too).
+    """
+    tokens = np.asarray(tokens)
+    if tokens.size and tokens[-1] != tables.end_of_document:
+        tokens = np.concatenate((tokens, np.array([tables.end_of_document], dtype=tokens.dtype)))
+    document_ends = np.flatnonzero(tokens == tables.end_of_document)
+    starts = np.concatenate(([0], document_ends[:-1] + 1)) if document_ends.size else document_ends
+    special_ids = np.array(sorted(tables.specials), dtype=np.int64)
+    is_special = np.isin(tokens, special_ids)
+    special_before = np.concatenate(([0], np.cumsum(is_special, dtype=np.int64)))
+    lengths = (document_ends + 1 - starts) - (special_before[document_ends + 1] - special_before[starts])
+    if not tables.byte_ids:
+        assert tables.decode is not None
+        decode = tables.decode
+        texts = []
+        for begin, end in zip(starts.tolist(), document_ends.tolist(), strict=True):
+            ids = tokens[begin : end + 1]
+            texts.append(decode(ids[~np.isin(ids, special_ids)].tolist()))
+        data, separator, boundary = _encode_normal([normal_text(text).encode("utf-8") for text in texts])
+        return _finish(data, separator, boundary, lengths, ngram)
+
+    size = max(int(tokens.max()) + 1 if tokens.size else 0, 256, int(special_ids.max()) + 1)
+    lower, separator_of = tables.lookup(size)
+    data = lower[tokens]
+    separator = separator_of[tokens]
+    boundary = np.zeros(tokens.size, dtype=bool)
+    boundary[document_ends] = True
+    wide = (tokens >= 128) & (tokens < 256)
+    if not wide.any():
+        return _finish(data, separator, boundary, lengths, ngram)
+    # Documents holding a byte >= 128 are decoded and normalised in Python; the rest stay as they are.
+    document_of = np.searchsorted(document_ends, np.flatnonzero(wide))
+    pieces_data: list[np.ndarray] = []
+    pieces_separator: list[np.ndarray] = []
+    pieces_boundary: list[np.ndarray] = []
+    position = 0
+    for document in np.unique(document_of).tolist():
+        begin, end = int(starts[document]), int(document_ends[document])
+        pieces_data.append(data[position:begin])
+        pieces_separator.append(separator[position:begin])
+        pieces_boundary.append(boundary[position:begin])
+        ids = tokens[begin : end + 1]
+        text_bytes = ids[ids < 256].astype(np.uint8).tobytes()
+        normal = normal_text(text_bytes.decode("utf-8", errors="replace")).encode("utf-8")
+        piece, piece_separator, piece_boundary = _encode_normal([normal])
+        pieces_data.append(piece)
+        pieces_separator.append(piece_separator)
+        pieces_boundary.append(piece_boundary)
+        position = end + 1
+    pieces_data.append(data[position:])
+    pieces_separator.append(separator[position:])
+    pieces_boundary.append(boundary[position:])
+    return _finish(
+        np.concatenate(pieces_data),
+        np.concatenate(pieces_separator),
+        np.concatenate(pieces_boundary),
+        lengths,
+        ngram,
+    )
