@@ -14,6 +14,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -26,30 +27,30 @@ __all__ = ["LEDGER_FILE", "LEDGER_SCHEMA", "read_ledger", "write_ledger"]
 
 LEDGER_FILE = "ledger.parquet"
 
-LEDGER_SCHEMA = pa.schema(
-    [
-        pa.field("record_id", pa.string(), nullable=False),
-        pa.field("source", pa.string(), nullable=False),
-        pa.field("line", pa.int64()),
-        pa.field("given_id", pa.string()),
-        pa.field("group", pa.string()),
-        pa.field("status", pa.string(), nullable=False),
-        pa.field("reason", pa.string()),
-        pa.field("duplicate_of", pa.string()),
-        pa.field("cluster", pa.string()),
-        pa.field("similarity", pa.float64()),
-        pa.field("text_hash", pa.string()),
-        pa.field("split", pa.string()),
-        pa.field("tokens", pa.int64()),
-    ]
-)
+_LEDGER_SCHEMA_FIELDS: list[pa.Field[Any]] = [
+    pa.field("record_id", pa.string(), nullable=False),
+    pa.field("source", pa.string(), nullable=False),
+    pa.field("line", pa.int64()),
+    pa.field("given_id", pa.string()),
+    pa.field("group", pa.string()),
+    pa.field("status", pa.string(), nullable=False),
+    pa.field("reason", pa.string()),
+    pa.field("duplicate_of", pa.string()),
+    pa.field("cluster", pa.string()),
+    pa.field("similarity", pa.float64()),
+    pa.field("text_hash", pa.string()),
+    pa.field("split", pa.string()),
+    pa.field("tokens", pa.int64()),
+]
+LEDGER_SCHEMA = pa.schema(_LEDGER_SCHEMA_FIELDS)
 
 
-def _record_ids(table: pa.Table, rows: np.ndarray) -> pa.Array:
+def _record_ids(table: pa.Table, rows: np.ndarray) -> pa.ChunkedArray[Any]:
     """Record ids of ``rows`` (-1 gives null)."""
     valid = rows >= 0
-    taken = table.column("record_id").take(pa.array(np.where(valid, rows, 0)))
-    return pc.if_else(pa.array(valid), taken, pa.scalar(None, pa.string()))
+    taken = table.column("record_id").take(np.where(valid, rows, 0))
+    result: pa.ChunkedArray[Any] = pc.if_else(pa.array(valid), taken, pa.scalar(None, pa.string()))
+    return result
 
 
 def write_ledger(
@@ -91,7 +92,7 @@ def write_ledger(
             ]
             tokens = token_count[start:stop]
             sims = similarity[start:stop]
-            columns = {
+            columns: dict[str, Any] = {
                 "record_id": batch.column("record_id"),
                 "source": batch.column("source"),
                 "line": batch.column("line"),

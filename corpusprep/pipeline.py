@@ -26,6 +26,7 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
+import pyarrow.compute as pc
 
 from corpusprep import __version__
 from corpusprep.clean import CleanConfig, clean_batch
@@ -54,6 +55,9 @@ SIGNATURE_FILE = "signatures.npy"
 _STATUS_CODE = {status: code for code, status in enumerate(STATUSES)}
 _WORK = ".work"
 _CHUNK_ROWS = 1 << 16
+#: A batch holds at most this many records and (but for one huge record) this much text.
+_BATCH_ROWS = 1024
+_BATCH_TEXT_BYTES = 4 << 20
 
 
 @dataclass(frozen=True, slots=True)
@@ -96,6 +100,23 @@ def _prepare(batch: pa.RecordBatch, clean: CleanConfig, exact: ExactConfig, near
         signatures=signatures,
         counts={"clean": Counter(clean_counts), "near": Counter(near_counts)},
     )
+
+
+def _bounded_slices(batch: pa.RecordBatch, limit: int) -> Iterator[pa.RecordBatch]:
+    """Cut ``batch`` into consecutive slices holding at most ``limit`` bytes of text each.
+
+    A slice always holds at least one row. The cut depends only on the batch, so
+    the work is spread over workers the same way whatever their number.
+    """
+    lengths = pc.fill_null(pc.binary_length(batch.column("text")), 0).to_numpy(zero_copy_only=False)
+    start, total = 0, 0
+    for row, length in enumerate(lengths.tolist()):
+        if row > start and total + length > limit:
+            yield batch.slice(start, row - start)
+            start, total = row, 0
+        total += length
+    if start < batch.num_rows:
+        yield batch.slice(start, batch.num_rows - start)
 
 
 def _encode(tokenizer: Tokenizer, texts: list[str]) -> list[np.ndarray]:
@@ -170,7 +191,7 @@ class _Run:
                 batch = prepared.batch
                 writer.write_batch(batch)
                 status = batch.column("status").to_pylist()
-                statuses.append(np.array([_STATUS_CODE[s] for s in status], dtype=np.int8))
+                statuses.append(np.array([_STATUS_CODE[str(s)] for s in status], dtype=np.int8))
                 text_hashes.append(prepared.text_hashes)
                 keys.append(prepared.exact_keys)
                 groups.extend(batch.column("group").to_pylist())
@@ -189,7 +210,7 @@ class _Run:
                     strict=True,
                 ):
                     if state == REJECTED:
-                        reasons[reason.split(":")[0]] += 1
+                        reasons[str(reason).split(":")[0]] += 1
                         if len(examples) < 5:
                             examples.append(f"{source}:{line if line is not None else '-'}: {reason}")
                 rows += batch.num_rows
@@ -224,11 +245,11 @@ class _Run:
             )
 
     def _read_batches(self) -> Iterator[pa.RecordBatch]:
-        for item in read_folder(self.input, self.definition.read):
+        for item in read_folder(self.input, self.definition.read, batch_rows=_BATCH_ROWS):
             if isinstance(item, InputFile):
                 self.inputs.append(item)
             else:
-                yield item
+                yield from _bounded_slices(item, _BATCH_TEXT_BYTES)
 
     # ------------------------------------------------------------------ barriers
     def exact_step(self) -> None:
@@ -258,8 +279,9 @@ class _Run:
             def shingles_of(index: int) -> np.ndarray:
                 return document_shingles(texts[int(kept[index])].as_py() or "", near)
 
-            result = find_clusters(signatures, near, shingles_of=shingles_of if near.verify == "exact" else None)
-            del texts
+            result = find_clusters(
+                signatures, near, shingles_of=shingles_of if near.verify == "exact" else None
+            )
         del signatures
         sizes = np.bincount(result.cluster, minlength=len(kept)) if len(kept) else np.zeros(0, np.int64)
         members = np.flatnonzero(sizes[result.cluster] > 1) if len(kept) else np.zeros(0, np.int64)
@@ -273,7 +295,7 @@ class _Run:
         report: dict[str, Any] = {"enabled": True, "action": near.action}
         report.update(self.near_counts)
         report.update(result.report)
-        report["near_copy"] = int(len(copies)) if near.action == "remove" else 0
+        report["near_copy"] = len(copies) if near.action == "remove" else 0
         self.stages["near"] = report
 
     def _compact_signatures(self, rows: np.ndarray) -> np.ndarray:
@@ -351,7 +373,7 @@ class _Run:
                     texts = batch.column("text").take(pa.array([r - start for r in rows], type=pa.int64()))
                     row_lists.append(rows)
                     start += batch.num_rows
-                    yield texts.to_pylist()
+                    yield [str(text) for text in texts.to_pylist()]
 
         with contextlib.ExitStack() as stack:
             files = {
@@ -442,7 +464,10 @@ class _Run:
         )
         path = self.partial / SIGNATURE_FILE
         target = np.lib.format.open_memmap(
-            path, mode="w+", dtype=np.dtype(self.signature_dtype).newbyteorder("<"), shape=(len(positions), self.permutations)
+            path,
+            mode="w+",
+            dtype=np.dtype(self.signature_dtype).newbyteorder("<"),
+            shape=(len(positions), self.permutations),
         )
         for start in range(0, len(positions), _CHUNK_ROWS):
             target[start : start + _CHUNK_ROWS] = source[positions[start : start + _CHUNK_ROWS]]

@@ -32,19 +32,21 @@ Columns of a document batch (:data:`DOC_SCHEMA`):
 
 from __future__ import annotations
 
+from typing import Any
+
 import pyarrow as pa
 
 __all__ = [
     "DOC_SCHEMA",
-    "STATUSES",
-    "KEPT",
-    "REJECTED",
     "EMPTY",
     "EXACT_COPY",
+    "KEPT",
     "NEAR_COPY",
-    "REMOVED_STATUSES",
-    "empty_batch",
     "REASONS",
+    "REJECTED",
+    "REMOVED_STATUSES",
+    "STATUSES",
+    "empty_batch",
 ]
 
 KEPT = "kept"
@@ -60,7 +62,8 @@ REMOVED_STATUSES = (EMPTY, EXACT_COPY, NEAR_COPY)
 # Reader rejections (status "rejected"):
 #   binary_file          NUL bytes in a file not marked as UTF-16/32 by its BOM
 #   undecodable          neither UTF-8 nor the fallback encoding decodes the bytes
-#   unreadable           the operating system refused to read the file
+#   unreadable           the file could not be read: refused by the operating system, not a regular
+#                        file, a damaged gzip stream, not valid Parquet/Arrow, reading stopped mid-file
 #   too_large            the file or decompressed stream exceeds the definition's limit
 #   unsupported_format   the file matched the include globs but no reader knows its format
 #   link_outside_input   a symbolic link that leads outside the input folder (not followed)
@@ -92,18 +95,17 @@ REASONS = (
     "near_copy",
 )
 
-DOC_SCHEMA = pa.schema(
-    [
-        pa.field("record_id", pa.string(), nullable=False),
-        pa.field("source", pa.string(), nullable=False),
-        pa.field("line", pa.int64()),
-        pa.field("given_id", pa.string()),
-        pa.field("group", pa.string()),
-        pa.field("text", pa.large_string()),
-        pa.field("status", pa.string(), nullable=False),
-        pa.field("reason", pa.string()),
-    ]
-)
+_DOC_SCHEMA_FIELDS: list[pa.Field[Any]] = [
+    pa.field("record_id", pa.string(), nullable=False),
+    pa.field("source", pa.string(), nullable=False),
+    pa.field("line", pa.int64()),
+    pa.field("given_id", pa.string()),
+    pa.field("group", pa.string()),
+    pa.field("text", pa.large_string()),
+    pa.field("status", pa.string(), nullable=False),
+    pa.field("reason", pa.string()),
+]
+DOC_SCHEMA = pa.schema(_DOC_SCHEMA_FIELDS)
 
 
 def empty_batch() -> pa.RecordBatch:

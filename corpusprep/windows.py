@@ -57,7 +57,9 @@ def safe_member(folder: Path, relative: str) -> Path:
         raise IntegrityError(f"manifest path {relative!r} leaves the output folder; refused")
     path = folder / Path(*pure.parts)
     if path.exists() and not path.resolve().is_relative_to(folder.resolve()):
-        raise IntegrityError(f"manifest path {relative!r} leads outside the output folder through a link; refused")
+        raise IntegrityError(
+            f"manifest path {relative!r} leads outside the output folder through a link; refused"
+        )
     return path
 
 
@@ -126,7 +128,8 @@ class SplitWindows:
         if not 0 <= index < len(self):
             raise IndexError(f"window {index} out of range for {len(self)} windows of {self.split}")
         shard = int(np.searchsorted(self._starts, index, side="right") - 1)
-        return self._map(shard)[index - self._starts[shard]]
+        row: np.ndarray = self._map(shard)[index - self._starts[shard]]
+        return row
 
     def __getitem__(self, index: int) -> tuple[np.ndarray, np.ndarray]:
         window = self.window(index)
@@ -179,7 +182,9 @@ class SplitWindows:
             raise ValueError(f"start_step = {start_step}: must be >= 0")
         order = shuffle_order(len(self), seed, epoch) if shuffle else np.arange(len(self))
         per_step = batch_size * world_size
-        for step in range(start_step, self.steps_per_epoch(batch_size, world_size=world_size, drop_last=drop_last)):
+        for step in range(
+            start_step, self.steps_per_epoch(batch_size, world_size=world_size, drop_last=drop_last)
+        ):
             begin = step * per_step + rank * batch_size
             chosen = order[begin : min(begin + batch_size, (step + 1) * per_step)]
             if len(chosen) == 0:
