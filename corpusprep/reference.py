@@ -31,6 +31,15 @@ def _toml_value(value: Any) -> str:
     return repr(value)
 
 
+_TYPE_NAMES = {
+    "tuple[str, ...]": "list of strings",
+    "int": "integer",
+    "float": "number",
+    "bool": "boolean",
+    "str": "string",
+}
+
+
 def _cell(text: str) -> str:
     return text.replace("|", "\\|").replace("\n", " ")
 
@@ -46,13 +55,13 @@ def settings_reference() -> str:
         parts.append(f"#### `[{name}]`")
         parts.append("")
         if cls.__doc__:
-            parts.append(cls.__doc__.strip().splitlines()[0])
+            parts.append(cls.__doc__.strip().splitlines()[0].replace("``", "`"))
             parts.append("")
         parts.append("| key | type | default | allowed | meaning |")
         parts.append("| --- | --- | --- | --- | --- |")
         for row in setting_docs(cls):
             parts.append(
-                f"| `{row.key}` | {row.type_name} | `{_cell(_toml_value(row.default))}` | "
+                f"| `{row.key}` | {_TYPE_NAMES.get(row.type_name, row.type_name)} | `{_cell(_toml_value(row.default))}` | "
                 f"{_cell(row.allowed)} | {_cell(row.doc)} |"
             )
         parts.append("")
