@@ -101,7 +101,7 @@ def _errors_for_rows(
 def weighted_error(
     threshold: float, bands: int, rows: int, false_positive_weight: float, false_negative_weight: float
 ) -> float:
-    """w_fp * integral_0^t P(s) ds + w_fn * integral_t^1 (1 - P(s)) ds, by Simpson's rule (1000 intervals each)."""
+    """w_fp * integral_0^t P(s) ds + w_fn * integral_t^1 (1 - P(s)) ds (Simpson, 1000 intervals each)."""
     if bands < 1 or rows < 1:
         raise ValueError(f"bands = {bands}, rows = {rows}: both must be at least 1")
     errors = _errors_for_rows(

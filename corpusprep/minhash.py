@@ -41,8 +41,8 @@ set. A non-empty set's minima are capped at ``2^32 - 2``, so it can never look
 empty; the cap merges two hash values that a minimum reaches with probability
 below 2^-31 per permutation.
 
-Any object with ``permutations``, ``shift`` and a call ``keys (n,) uint64 ->
-values (n, permutations) uint64`` may replace the family (see
+Any object with ``permutations``, ``shift`` and ``fill(keys, out)`` writing the
+(permutations, n) ``uint64`` values of n keys may replace the family (see
 :class:`HashFunctions`), which is how the tests inject the hash functions of
 MMDS Example 3.8.
 """
@@ -72,8 +72,8 @@ EMPTY_VALUE = 0xFFFFFFFF
 _CAP = EMPTY_VALUE - 1
 _MASK64 = (1 << 64) - 1
 _MASK32 = 0xFFFFFFFF
-# Rows of the (keys, permutations) work array; about 1 MiB at 128 permutations.
-_CHUNK_CELLS = 1 << 17
+# Cells of the (permutations, keys) work array: 2 MiB of uint64.
+_CHUNK_CELLS = 1 << 18
 
 
 class HashFunctions(Protocol):
@@ -89,8 +89,8 @@ class HashFunctions(Protocol):
         """Right shift applied to each minimum to give the signature value."""
         ...
 
-    def __call__(self, keys: np.ndarray) -> np.ndarray:
-        """Values of every function on every key: shape (len(keys), permutations), uint64."""
+    def fill(self, keys: np.ndarray, out: np.ndarray) -> None:
+        """Write function i's value on key j into ``out[i, j]`` (shape (permutations, len(keys)), uint64)."""
         ...
 
 
@@ -140,21 +140,20 @@ class MultiplyShift:
         """Signature values are the top 32 bits of the 64-bit minimum."""
         return 32
 
-    def __call__(self, keys: np.ndarray) -> np.ndarray:
+    def fill(self, keys: np.ndarray, out: np.ndarray) -> None:
         """``(a_i * fold(x) + b_i) mod 2^64`` for every key x and function i (before the shift)."""
-        folded = fold_key(keys)
-        values: np.ndarray = np.multiply(folded[:, None], self.multipliers[None, :])
-        values += self.increments[None, :]
-        return values
+        np.multiply(self.multipliers[:, None], fold_key(keys)[None, :], out=out)
+        np.add(out, self.increments[:, None], out=out)
 
 
 def signature_matrix(key_sets: Sequence[np.ndarray], functions: HashFunctions) -> np.ndarray:
     """Signatures of many key sets at once: shape (len(key_sets), permutations), ``uint32``.
 
-    The keys of all sets are concatenated and processed in blocks of rows; the
-    minimum of each set's piece of a block is taken with ``np.minimum.reduceat``
-    and merged into the set's row, so the work array stays about 1 MiB however
-    large the documents are. An empty set gets a row of :data:`EMPTY_VALUE`.
+    The keys of all sets are concatenated and processed in blocks; values are laid
+    out (permutations, keys) so that ``np.minimum.reduceat`` runs along contiguous
+    memory (several times faster than along the other axis); the minimum of each
+    set's piece of a block is merged into the set's row, so the work array stays
+    about 2 MiB however large the documents are. An empty set gets a row of :data:`EMPTY_VALUE`.
     """
     permutations = functions.permutations
     count = len(key_sets)
@@ -165,16 +164,18 @@ def signature_matrix(key_sets: Sequence[np.ndarray], functions: HashFunctions) -
         owner_starts = np.concatenate(([0], np.cumsum(sizes)[:-1]))
         owners = np.repeat(np.arange(count, dtype=np.int64), sizes)
         block = max(1, _CHUNK_CELLS // permutations)
+        work = np.empty((permutations, min(block, keys_all.size)), dtype=np.uint64)
         for begin in range(0, keys_all.size, block):
             end = min(begin + block, keys_all.size)
-            values = functions(keys_all[begin:end])
+            values = work[:, : end - begin]
+            functions.fill(keys_all[begin:end], values)
             block_owners = owners[begin:end]
             first_owner, last_owner = int(block_owners[0]), int(block_owners[-1])
             members = np.arange(first_owner, last_owner + 1)
             members = members[sizes[members] > 0]
             piece_starts = np.maximum(owner_starts[members], begin) - begin
-            pieces = np.minimum.reduceat(values, piece_starts, axis=0)
-            minima[members] = np.minimum(minima[members], pieces)
+            pieces = np.minimum.reduceat(values, piece_starts, axis=1)
+            minima[members] = np.minimum(minima[members], pieces.T)
     signatures: np.ndarray = np.minimum(minima >> np.uint64(functions.shift), np.uint64(_CAP)).astype(
         np.uint32
     )

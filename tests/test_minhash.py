@@ -12,6 +12,7 @@ import xxhash
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from corpusprep import minhash
 from corpusprep.minhash import (
     EMPTY_VALUE,
     MultiplyShift,
@@ -51,9 +52,9 @@ class GivenFunctions:
     def shift(self) -> int:
         return 0
 
-    def __call__(self, keys: np.ndarray) -> np.ndarray:
-        columns = [[function(int(x)) for x in keys.tolist()] for function in self._functions]  # type: ignore[operator]
-        return np.array(columns, dtype=np.uint64).T.reshape(len(keys), len(self._functions))
+    def fill(self, keys: np.ndarray, out: np.ndarray) -> None:
+        for column, function in enumerate(self._functions):
+            out[column, :] = [function(int(x)) for x in keys.tolist()]  # type: ignore[operator]
 
 
 def test_mmds_example_3_8_signature_matrix() -> None:
@@ -111,9 +112,10 @@ def test_batch_equals_scalar_property(sets: list[list[int]], seed: int) -> None:
 
 
 def test_sets_spanning_many_blocks_equal_scalar() -> None:
-    # 128 permutations -> blocks of 1024 keys; these sets cross block boundaries in every way.
+    # Sets that cross the work blocks' boundaries in every way (block size from the module).
     family = MultiplyShift(permutations=128, seed=3)
-    sizes = [1, 1500, 0, 1023, 1, 2049, 0, 5]
+    block = minhash._CHUNK_CELLS // 128
+    sizes = [1, block + block // 2, 0, block - 1, 1, 2 * block + 1, 0, 5]
     start = 0
     key_sets = []
     for size in sizes:

@@ -197,7 +197,8 @@ def test_clusters_representatives_and_empty_documents(verify: str) -> None:
     report = result.report
     assert report["clusters"] == 1 and report["documents_in_clusters"] == 3 and report["near_copies"] == 2
     assert report["cluster_sizes"] == {"3": 1}
-    assert report["verified"] == 3 and report["candidates"] >= 3
+    candidates = report["candidates"]
+    assert report["verified"] == 3 and isinstance(candidates, int) and candidates >= 3
     assert set(map(tuple, result.pairs.tolist())) == {(1, 3), (1, 6), (3, 6)}
 
 
