@@ -44,7 +44,7 @@ import pyarrow as pa
 
 from corpusprep.config import setting
 from corpusprep.errors import IntegrityError
-from corpusprep.repair import repair_fully, repair_quickly
+from corpusprep.repair import C1_IN_UTF8, repair_fully, repair_quickly
 from corpusprep.schema import DOC_SCHEMA, EMPTY, KEPT
 
 __all__ = [
@@ -217,7 +217,7 @@ def remove_controls(text: str, *, keep_carriage_return: bool = False) -> str:
     # occur nowhere else, and C1 controls have lead byte C2.
     raw = text.encode("utf-8", "surrogatepass")
     deleted = _C0_BYTES_BUT_CR if keep_carriage_return else _C0_BYTES
-    if len(raw.translate(None, deleted)) == len(raw) and b"\xc2" not in raw:
+    if len(raw.translate(None, deleted)) == len(raw) and not C1_IN_UTF8.search(raw):
         return text
     pattern = _CONTROLS_BUT_CR if keep_carriage_return else _CONTROLS
     return pattern.sub("", text)

@@ -43,6 +43,7 @@ mojibake made from them, and generated strings.
 
 from __future__ import annotations
 
+import re
 import unicodedata
 from collections.abc import Callable
 from types import MappingProxyType
@@ -51,7 +52,14 @@ import ftfy
 from ftfy import fixes
 from ftfy.badness import is_bad
 
-__all__ = ["needs_full_repair", "repair_fully", "repair_quickly", "split_segments"]
+__all__ = [
+    "C1_IN_UTF8",
+    "SURROGATE_IN_UTF8",
+    "needs_full_repair",
+    "repair_fully",
+    "repair_quickly",
+    "split_segments",
+]
 
 # ftfy's explanation steps -> the clean stage's counter names. Encoding steps
 # ("encode", "decode", "transcode") all count as "fix_mojibake".
@@ -72,6 +80,10 @@ _APPLIED_STEP_COUNTER = MappingProxyType(
 )
 
 Fixer = Callable[[str], str]
+
+# Quick tests on the UTF-8 bytes; a literal first byte lets the regex engine skip ahead fast.
+C1_IN_UTF8 = re.compile(b"\xc2[\x80-\x9f]")
+SURROGATE_IN_UTF8 = re.compile(b"\xed[\xa0-\xbf]")
 
 
 def split_segments(text: str) -> list[str]:
@@ -131,12 +143,12 @@ def _non_ascii_round(text: str, settings: ftfy.TextFixerConfig, changed: set[str
     """ftfy's steps from ``fix_c1_controls`` to ``fix_surrogates`` on non-ASCII text.
 
     A step is skipped only where it cannot change anything: C1 controls
-    (U+0080..U+009F) are encoded in UTF-8 with lead byte C2, and surrogates
-    (kept by ``surrogatepass``) with lead byte ED.
+    (U+0080..U+009F) are encoded in UTF-8 as C2 80..C2 9F, and surrogates
+    (kept by ``surrogatepass``) as ED A0..ED BF and a continuation byte.
     """
     raw = text.encode("utf-8", "surrogatepass")
     current = text
-    if settings.fix_c1_controls and b"\xc2" in raw:
+    if settings.fix_c1_controls and C1_IN_UTF8.search(raw):
         fixed = fixes.fix_c1_controls(current)
         if fixed != current:
             changed.add("fix_mojibake")
@@ -146,7 +158,7 @@ def _non_ascii_round(text: str, settings: ftfy.TextFixerConfig, changed: set[str
         if fixed != current:
             changed.add(counter)
             current = fixed
-    if settings.fix_surrogates and b"\xed" in raw:
+    if settings.fix_surrogates and SURROGATE_IN_UTF8.search(raw):
         fixed = fixes.fix_surrogates(current)
         if fixed != current:
             changed.add("replace_surrogates")
