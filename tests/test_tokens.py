@@ -193,7 +193,7 @@ def test_decode_rejects_ids_outside_vocabulary() -> None:
         ({"end_of_document": "x"}, "tokenizer.end_of_document"),
         ({"end_of_document": "<fin\x00>"}, "tokenizer.end_of_document"),
         ({"pad": "<päd>"}, "tokenizer.pad"),
-        ({"kind": "words"}, "tokenizer.kind"),
+        ({"kind": "morphemes"}, "tokenizer.kind"),
     ],
 )
 def test_bad_settings_name_the_key(settings_: dict[str, str], key: str) -> None:
