@@ -92,6 +92,21 @@ def _licence_lines() -> tuple[str, ...]:
     return tuple(dict.fromkeys(lines))  # unique, first-seen order
 
 
+@cache
+def _licence_files() -> tuple[str, ...]:
+    """Whole non-ASCII Debian licence files, about 0.8 MB of them in path order."""
+    files, size = [], 0
+    for path in sorted(Path("/usr/share/doc").glob("*/copyright")):
+        try:
+            text = path.read_text(encoding="utf-8")
+        except (UnicodeDecodeError, OSError):
+            continue
+        if not text.isascii() and size < 800_000:
+            files.append(text)
+            size += len(text)
+    return tuple(files)
+
+
 def _mojibake(text: str, layers: int = 1) -> str:
     # REFERENCES 5.2: make mojibake with ftfy's sloppy-windows-1252 codec, not cp1252 (which loses 0x9D).
     for _ in range(layers):
@@ -377,6 +392,7 @@ def test_fast_path_equals_ftfy_on_python_docs() -> None:
 def test_fast_path_equals_ftfy_on_real_multilingual_text_and_its_mojibake() -> None:
     lines = list(_licence_lines())[:4000]
     docs = ["\n".join(lines[start : start + 40]) + "\n" for start in range(0, len(lines), 40)]
+    docs += list(_licence_files())
     damaged = [_mojibake(doc) for doc in docs[::4]] + [_mojibake(doc, layers=2) for doc in docs[1::8]]
     mixed = ["\n".join(line if index % 3 else _mojibake(line) for index, line in enumerate(lines[:600]))]
     settings_ = repair_settings(DEFAULT)
