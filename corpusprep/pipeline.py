@@ -352,9 +352,23 @@ class _Run:
         }
 
     # ------------------------------------------------------------------ pass 2
+    def _train_texts(self) -> Iterator[str]:
+        """The cleaned texts of the train split's kept documents, in ledger order, streamed."""
+        start = 0
+        with pa.memory_map(str(self.work / "documents.arrow")) as source:
+            reader = pa.ipc.open_file(source)
+            for index in range(reader.num_record_batches):
+                batch = reader.get_batch(index)
+                rows = [i for i in range(batch.num_rows) if self.split_of[start + i] == SPLITS[0]]
+                start += batch.num_rows
+                if rows:
+                    yield from (
+                        str(t) for t in batch.column("text").take(pa.array(rows, type=pa.int64())).to_pylist()
+                    )
+
     def tokenize_step(self) -> None:
         definition = self.definition
-        self.tokenizer = build_tokenizer(definition.tokenizer)
+        self.tokenizer = build_tokenizer(definition.tokenizer, self._train_texts)
         self.dtype = smallest_dtype(self.tokenizer.vocab_size)
         self.token_count = np.full(self.rows, -1, dtype=np.int64)
         offsets: dict[str, list[int]] = {name: [] for name in SPLITS}
