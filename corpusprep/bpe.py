@@ -275,14 +275,6 @@ def load_tokenizer_file(config: TokenizerConfig) -> JsonTokenizer:
         hf.add_special_tokens([AddedToken(config.pad, special=True, normalized=False)])
         pad_added = True
     roles.append("pad")
-    ids = {role: hf.token_to_id(getattr(config, role)) for role in roles}
-    for role, token_id in ids.items():
-        others = [other for other, other_id in ids.items() if other != role and other_id == token_id]
-        if others:
-            raise DefinitionError(
-                f"tokenizer.{role} = {getattr(config, role)!r}: the file gives it the id {token_id}, "
-                f"the same as tokenizer.{others[0]}; every special token needs its own id"
-            )
     vocab = hf.get_vocab(with_added_tokens=True)
     size = max(vocab.values()) + 1 if vocab else 0
     if size > _MAX_IDS:
