@@ -14,6 +14,7 @@ __all__ = [
     "IntegrityError",
     "OutputExistsError",
     "TooManyRejectedError",
+    "WorkerDiedError",
 ]
 
 
@@ -39,3 +40,7 @@ class TooManyRejectedError(CorpusprepError, RuntimeError):
 
 class IntegrityError(CorpusprepError, RuntimeError):
     """A finished output or an internal invariant (such as the ledger sum) does not hold."""
+
+
+class WorkerDiedError(CorpusprepError, RuntimeError):
+    """A worker process ended abruptly (killed, out of memory); nothing was published."""

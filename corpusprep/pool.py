@@ -15,7 +15,10 @@ import multiprocessing
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 from typing import TypeVar
+
+from corpusprep.errors import WorkerDiedError
 
 __all__ = ["ordered_map"]
 
@@ -38,13 +41,21 @@ def ordered_map(function: Callable[[In], Out], items: Iterable[In], *, workers: 
     context = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(max_workers=workers, mp_context=context) as executor:
         pending: deque[Future[Out]] = deque()
+        done = 0
         try:
             for item in items:
                 pending.append(executor.submit(function, item))
                 if len(pending) >= workers * 2:
                     yield pending.popleft().result()
+                    done += 1
             while pending:
                 yield pending.popleft().result()
+                done += 1
+        except BrokenProcessPool:
+            raise WorkerDiedError(
+                f"a worker process ended abruptly (killed, or out of memory) while batch {done + 1} "
+                "was being processed; nothing was published. Run again, perhaps with fewer --workers."
+            ) from None
         finally:
             for future in pending:
                 future.cancel()

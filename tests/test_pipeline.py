@@ -151,12 +151,15 @@ def test_windows_reproduce_the_kept_documents(demo_output: Path) -> None:
             else:
                 pieces[-1].append(token)
         complete = pieces[:-1]  # the last piece may be cut by the dropped or padded tail
-        found = Counter(xxhash.xxh3_128(tokenizer.decode(p, skip_special_tokens=False).encode()).hexdigest() for p in complete)
+        decoded = (tokenizer.decode(piece, skip_special_tokens=False) for piece in complete)
+        found = Counter(xxhash.xxh3_128(text.encode()).hexdigest() for text in decoded)
         assert found <= expected, f"{split}: a decoded document is not a kept document of the split"
         assert sum(expected.values()) - sum(found.values()) <= 1
 
 
-def test_rerun_and_worker_count_give_identical_bytes(archive: Path, demo_output: Path, tmp_path: Path) -> None:
+def test_rerun_and_worker_count_give_identical_bytes(
+    archive: Path, demo_output: Path, tmp_path: Path
+) -> None:
     definition = load_definition(DEMO)
     again = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "one"), workers=1).output
     parallel = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "two"), workers=2).output
@@ -260,3 +263,20 @@ def test_near_copies_never_straddle_splits_for_any_seed(archive: Path, tmp_path:
             if row["group"] is not None and row["status"] == "kept":
                 groups.setdefault(row["group"], set()).add(row["split"])
         assert all(len(splits) == 1 for splits in groups.values())
+
+
+def _die_on_second_batch(batch: Any) -> Any:
+    import os
+    import signal
+
+    if batch == 1:
+        os.kill(os.getpid(), signal.SIGKILL)
+    return batch
+
+
+def test_a_worker_that_dies_fails_the_map_clearly() -> None:
+    from corpusprep.errors import WorkerDiedError
+    from corpusprep.pool import ordered_map
+
+    with pytest.raises(WorkerDiedError, match="ended abruptly"):
+        list(ordered_map(_die_on_second_batch, range(6), workers=2))
