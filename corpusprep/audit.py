@@ -93,13 +93,17 @@ class AuditConfig:
     skip_ngrams: bool = False  # leave out the n-gram check (it reads every shard)
     against: Path | None = None  # an outside evaluation set to compare with train
     text_field: str = "text"  # field or column of the text in ``against``
-    chunk_rows: int = 4096  # windows read per step when streaming shards
+    chunk_tokens: int = 1 << 18  # tokens read per step when streaming shards (small arrays stay in cache)
 
     def __post_init__(self) -> None:
         if not 1 <= self.ngram <= 1000:
             raise AuditInputError(f"--ngram {self.ngram}: must be between 1 and 1000")
-        if self.chunk_rows < 1:
-            raise AuditInputError(f"chunk_rows = {self.chunk_rows}: must be at least 1")
+        if self.chunk_tokens < 1:
+            raise AuditInputError(f"chunk_tokens = {self.chunk_tokens}: must be at least 1")
+
+    def chunk_rows(self, stored_length: int) -> int:
+        """Windows per step for windows of ``stored_length`` tokens."""
+        return max(1, self.chunk_tokens // max(stored_length, 1))
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -407,7 +411,7 @@ class _Audit:
             pad_id=specials.get("pad", -1),
             tail=str(manifest["windows"].get("tail", "pad")),
             against=items,
-            chunk_rows=self.config.chunk_rows,
+            chunk_rows=self.config.chunk_rows(int(manifest["windows"]["stored_length"])),
             train_total=train_total,
             progress=self.progress,
         )

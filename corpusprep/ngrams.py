@@ -163,12 +163,19 @@ def _mix(values: np.ndarray) -> np.ndarray:
     return mixed
 
 
+@functools.lru_cache(maxsize=32)
+def _power_table(base: int, size: int) -> np.ndarray:
+    values = np.full(size, base, dtype=np.uint64)
+    values[0] = 1
+    table = np.cumprod(values, dtype=np.uint64)
+    table.flags.writeable = False
+    return table
+
+
 def _powers(base: int, count: int) -> np.ndarray:
-    """``base^0 .. base^(count-1)`` modulo 2^64."""
-    values = np.full(count, base, dtype=np.uint64)
-    if count:
-        values[0] = 1
-    return np.cumprod(values, dtype=np.uint64)
+    """``base^0 .. base^(count-1)`` modulo 2^64 (a read-only view of a table sized to a power of two)."""
+    size = 1 << max(count - 1, 1).bit_length()
+    return _power_table(base, size)[:count]
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -221,14 +228,14 @@ def hash_normalised(
     after = np.concatenate((is_word[1:], [False])) if size else is_word
     starts = np.flatnonzero(is_word & ~before)
     ends = np.flatnonzero(is_word & ~after)
-    boundaries = np.cumsum(boundary, dtype=np.int64)
-    word_document = boundaries[starts] if starts.size else np.zeros(0, dtype=np.int64)
+    word_document = np.searchsorted(np.flatnonzero(boundary), starts).astype(np.int64)
     if starts.size:
         constants = np.array(_byte_constants(), dtype=np.uint64)
         terms = constants[data] * _powers(_Q, size)
         prefix = np.cumsum(terms, dtype=np.uint64)
         below = np.where(starts > 0, prefix[np.maximum(starts - 1, 0)], np.uint64(0))
         poly = (prefix[ends] - below) * _powers(_P, size)[ends]
+        del terms, prefix
         lengths = (ends - starts + 1).astype(np.uint64)
         words = _mix(poly ^ (lengths * np.uint64(_G)))
     else:
@@ -298,18 +305,28 @@ class StreamTables:
     byte_ids: bool
     decode: Callable[[list[int]], str] | None = None
 
-    def lookup(self, size: int) -> tuple[np.ndarray, np.ndarray]:
-        """Per id below ``size``: its lowercase byte and whether it separates words (byte tokenizer)."""
-        lower = np.full(size, _SPACE, dtype=np.uint8)
-        separator = np.ones(size, dtype=bool)
-        for value in range(min(size, 128)):
-            char = chr(value)
-            lower[value] = ord(char.lower())
-            separator[value] = char.isspace() or unicodedata.category(char).startswith("P")
-        for value in range(128, min(size, 256)):
-            lower[value] = value
-            separator[value] = False
-        return lower, separator
+    def lookup(self, size: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Per id below ``size``: lowercase byte, separates words, ASCII whitespace or special."""
+        return _lookup(size)
+
+
+@functools.lru_cache(maxsize=8)
+def _lookup(size: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    lower = np.full(size, _SPACE, dtype=np.uint8)
+    separator = np.ones(size, dtype=bool)
+    space = np.ones(size, dtype=bool)
+    for value in range(min(size, 128)):
+        char = chr(value)
+        lower[value] = ord(char.lower())
+        separator[value] = char.isspace() or unicodedata.category(char).startswith("P")
+        space[value] = char.isspace()
+    for value in range(128, min(size, 256)):
+        lower[value] = value
+        separator[value] = False
+        space[value] = False
+    for table in (lower, separator, space):
+        table.flags.writeable = False
+    return lower, separator, space
 
 
 def complete_documents(chunks: Iterable[np.ndarray], end_of_document: int) -> Iterator[np.ndarray]:
@@ -319,18 +336,18 @@ def complete_documents(chunks: Iterable[np.ndarray], end_of_document: int) -> It
     final remainder (a stream that does not end with one) is yielded last.
     Memory is one chunk plus the longest document.
     """
-    carry = np.zeros(0, dtype=np.int64)
+    carry: list[np.ndarray] = []  # pieces of the unfinished document, joined once it ends
     for chunk in chunks:
-        tokens = np.concatenate((carry, chunk)) if carry.size else np.asarray(chunk)
-        ends = np.flatnonzero(tokens == end_of_document)
+        chunk = np.asarray(chunk)
+        ends = np.flatnonzero(chunk == end_of_document)
         if ends.size == 0:
-            carry = tokens
+            carry.append(chunk)
             continue
         cut = int(ends[-1]) + 1
-        yield tokens[:cut]
-        carry = tokens[cut:]
-    if carry.size:
-        yield carry
+        yield np.concatenate((*carry, chunk[:cut])) if carry else chunk[:cut]
+        carry = [chunk[cut:]] if cut < chunk.size else []
+    if carry:
+        yield np.concatenate(carry)
 
 
 def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> HashedChunk:
@@ -359,7 +376,7 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
         return _finish(data, separator, boundary, lengths, ngram)
 
     size = max(int(tokens.max()) + 1 if tokens.size else 0, 256, int(special_ids.max()) + 1)
-    lower, separator_of = tables.lookup(size)
+    lower, separator_of, ascii_space = tables.lookup(size)
     data = lower[tokens]
     separator = separator_of[tokens]
     boundary = np.zeros(tokens.size, dtype=bool)
@@ -367,25 +384,28 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
     wide = (tokens >= 128) & (tokens < 256)
     if not wide.any():
         return _finish(data, separator, boundary, lengths, ngram)
-    # Documents holding a byte >= 128 are decoded and normalised in Python; the rest stay as they are.
-    document_of = np.searchsorted(document_ends, np.flatnonzero(wide))
+    # A run of tokens between ASCII whitespace (or special ids) that holds a byte >= 128 is decoded
+    # and normalised in Python. Cutting at ASCII whitespace changes nothing: it is never part of a
+    # UTF-8 sequence, and it is neither cased nor case-ignorable, so str.lower (final sigma
+    # included) and str.split give the same words as on the whole document.
+    spaces = np.flatnonzero(ascii_space[tokens])
+    runs = np.unique(np.searchsorted(spaces, np.flatnonzero(wide)))
     pieces_data: list[np.ndarray] = []
     pieces_separator: list[np.ndarray] = []
     pieces_boundary: list[np.ndarray] = []
     position = 0
-    for document in np.unique(document_of).tolist():
-        begin, end = int(starts[document]), int(document_ends[document])
+    for run in runs.tolist():
+        begin = int(spaces[run - 1]) + 1 if run > 0 else 0
+        end = int(spaces[run]) if run < spaces.size else tokens.size
         pieces_data.append(data[position:begin])
         pieces_separator.append(separator[position:begin])
         pieces_boundary.append(boundary[position:begin])
-        ids = tokens[begin : end + 1]
-        text_bytes = ids[ids < 256].astype(np.uint8).tobytes()
-        normal = normal_text(text_bytes.decode("utf-8", errors="replace")).encode("utf-8")
-        piece, piece_separator, piece_boundary = _encode_normal([normal])
+        text = tokens[begin:end].astype(np.uint8).tobytes().decode("utf-8", errors="replace")
+        piece = np.frombuffer(normal_text(text).encode("utf-8"), dtype=np.uint8)
         pieces_data.append(piece)
-        pieces_separator.append(piece_separator)
-        pieces_boundary.append(piece_boundary)
-        position = end + 1
+        pieces_separator.append(piece == _SPACE)
+        pieces_boundary.append(np.zeros(piece.size, dtype=bool))
+        position = end
     pieces_data.append(data[position:])
     pieces_separator.append(separator[position:])
     pieces_boundary.append(boundary[position:])

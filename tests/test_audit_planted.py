@@ -26,6 +26,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 import xxhash
+from tokenizers import Tokenizer
 from typer.testing import CliRunner
 
 from corpusprep.audit import AuditConfig, audit_output
@@ -69,7 +70,7 @@ def _file_record(path: Path) -> dict[str, Any]:
     return {"bytes": len(data), "xxh3_128": xxhash.xxh3_128_hexdigest(data)}
 
 
-def _split_documents(folder: Path, manifest: dict[str, Any], split: str) -> list[bytes]:
+def _split_documents(folder: Path, manifest: dict[str, Any], split: str) -> list[np.ndarray]:
     """The documents of a split in packing order, read back with plain NumPy (pack module docstring)."""
     parts = []
     for number, shard in enumerate(manifest["splits"][split]["shards"]):
@@ -82,7 +83,16 @@ def _split_documents(folder: Path, manifest: dict[str, Any], split: str) -> list
     eod = specials["end_of_document"]["id"]
     ends = np.flatnonzero(stream == eod)
     starts = np.concatenate(([0], ends[:-1] + 1))
-    return [stream[a:b].astype(np.uint8).tobytes() for a, b in zip(starts, ends, strict=True)]
+    return [stream[a:b] for a, b in zip(starts, ends, strict=True)]
+
+
+def _tokenizer(folder: Path) -> Tokenizer:
+    """The output's tokenizer file, loaded with HF tokenizers (the reference reader of that file)."""
+    return Tokenizer.from_file(str(folder / "tokenizer.json"))
+
+
+def _encode(tokenizer: Tokenizer, text: str) -> list[int]:
+    return list(tokenizer.encode(text, add_special_tokens=False).ids)
 
 
 def texts_by_record(folder: Path) -> dict[str, tuple[str, str]]:
@@ -90,12 +100,14 @@ def texts_by_record(folder: Path) -> dict[str, tuple[str, str]]:
     manifest = json.loads((folder / "manifest.json").read_text(encoding="utf-8"))
     rows = pq.read_table(folder / "ledger.parquet").to_pylist()
     seed = manifest["definition"]["pack"]["seed"]
+    tokenizer = _tokenizer(folder)
     out = {}
     for split in manifest["splits"]:
         members = [row["record_id"] for row in rows if row["status"] == "kept" and row["split"] == split]
         documents = _split_documents(folder, manifest, split)
         for position, index in enumerate(document_order(len(members), seed, split).tolist()):
-            out[members[index]] = (split, documents[position].decode("utf-8"))
+            ids = documents[position].tolist()
+            out[members[index]] = (split, tokenizer.decode(ids, skip_special_tokens=False))
     return out
 
 
@@ -117,11 +129,13 @@ def reseal(
     for record_id, text in replace.items():
         texts[record_id] = (texts[record_id][0], text)
     changed = set(replace) | {record_id for record_id, _, _ in add}
+    tokenizer = _tokenizer(folder)
     for row in rows:
         if row["record_id"] in changed:
-            data = texts[row["record_id"]][1].encode("utf-8")
-            row["text_hash"] = xxhash.xxh3_128_hexdigest(data)
-            row["tokens"] = len(data)
+            text = texts[row["record_id"]][1]
+            assert _encode(tokenizer, text) and tokenizer.decode(_encode(tokenizer, text)) == text
+            row["text_hash"] = xxhash.xxh3_128_hexdigest(text.encode("utf-8"))
+            row["tokens"] = len(_encode(tokenizer, text))
     kept = [row for row in rows if row["status"] == "kept"]
 
     # shards: repack the splits that changed, documents in the pipeline's packing order
@@ -133,7 +147,7 @@ def reseal(
         order = document_order(len(members), definition["pack"]["seed"], split).tolist()
         result = pack_split(
             split,
-            (np.frombuffer(texts[members[i]][1].encode("utf-8"), dtype=np.uint8) for i in order),
+            (np.array(_encode(tokenizer, texts[members[i]][1]), dtype=np.int64) for i in order),
             config=PackConfig(**definition["pack"]),
             eod_id=specials["end_of_document"]["id"],
             pad_id=specials["pad"]["id"],
