@@ -18,6 +18,7 @@ import functools
 import json
 import os
 import shutil
+import signal
 from collections import Counter
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
@@ -29,6 +30,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from corpusprep import __version__
+from corpusprep.checkpoint import Checkpoints, input_fingerprint, step_keys
 from corpusprep.clean import CleanConfig, clean_batch
 from corpusprep.definition import Definition
 from corpusprep.errors import InputError, IntegrityError, OutputExistsError, TooManyRejectedError
@@ -54,6 +56,26 @@ TOKENIZER_FILE = "tokenizer.json"
 SIGNATURE_FILE = "signatures.npy"
 _STATUS_CODE = {status: code for code, status in enumerate(STATUSES)}
 _WORK = ".work"
+#: Attributes each checkpointed step leaves for later steps (besides ``stages``).
+_STEP_STATE = {
+    "first_pass": (
+        "inputs",
+        "rows",
+        "status",
+        "text_hashes",
+        "keys",
+        "groups",
+        "has_signatures",
+        "signature_dtype",
+        "permutations",
+        "near_counts",
+    ),
+    "exact_step": ("status", "duplicate_of"),
+    "near_step": ("status", "duplicate_of", "cluster_of", "similarity", "signed_rows"),
+    "split_step": ("split_of",),
+}
+#: Fault injection for the kill-and-resume tests: SIGKILL the run right after this step's checkpoint.
+_KILL_AFTER_VARIABLE = "CORPUSPREP_FAULT_KILL_AFTER"
 _CHUNK_ROWS = 1 << 16
 #: A batch holds at most this many records and (but for one huge record) this much text.
 _BATCH_ROWS = 1024
@@ -160,10 +182,34 @@ class _Run:
         self.output: Path = definition.output
         self.workers = workers
         self.progress = progress or (lambda stage, done, total: None)
-        self.partial = self.output.with_name(f".{self.output.name}.partial-{os.getpid()}")
+        self.partial = self.output.with_name(f".{self.output.name}.partial")
         self.work = self.partial / _WORK
         self.stages: dict[str, dict[str, Any]] = {}
         self.inputs: list[InputFile] = []
+        self.signature_dtype = np.dtype(np.uint32)
+        self.permutations = 0
+        self.checkpoints = Checkpoints(self.work)
+
+    # ------------------------------------------------------------------ checkpoints
+    def state(self, step: str) -> dict[str, Any]:
+        """What ``step`` leaves for the steps after it (saved in its checkpoint)."""
+        names = _STEP_STATE[step]
+        state = {name: getattr(self, name) for name in names if name != "split_of"}
+        if "split_of" in names:
+            codes = [SPLITS.index(split) if split is not None else -1 for split in self.split_of]
+            state["split_codes"] = np.array(codes, dtype=np.int8)
+        state["stages"] = self.stages
+        return state
+
+    def restore(self, step: str) -> None:
+        """Load the state every step up to ``step`` left."""
+        for name in list(_STEP_STATE)[: list(_STEP_STATE).index(step) + 1]:
+            state = self.checkpoints.load(name, {"InputFile": InputFile})
+            codes = state.pop("split_codes", None)
+            if codes is not None:
+                self.split_of = [SPLITS[code] if code >= 0 else None for code in codes.tolist()]
+            for key, value in state.items():
+                setattr(self, key, value)
 
     # ------------------------------------------------------------------ pass 1
     def first_pass(self) -> None:
@@ -420,6 +466,8 @@ class _Run:
         config = self.definition.pack
         specials = self.tokenizer.special_ids()
         shard_folder = self.partial / SHARD_FOLDER
+        if shard_folder.exists():
+            shutil.rmtree(shard_folder)
         shard_folder.mkdir()
         self.splits: dict[str, Any] = {}
         for split in SPLITS:
@@ -602,14 +650,23 @@ def run_pipeline(
         raise InputError(f"{definition.input}: the input folder does not exist or is not a folder")
     _check_output(definition.output, force)
     run = _Run(definition, workers, progress)
-    if run.partial.exists():
+    keys = step_keys(definition.resolved(), input_fingerprint(definition.input), __version__)
+    resume = run.checkpoints.resume_point(keys) if run.partial.exists() else None
+    if resume is None and run.partial.exists():
         shutil.rmtree(run.partial)
-    run.work.mkdir(parents=True)
+    run.work.mkdir(parents=True, exist_ok=True)
+    kill_after = os.environ.get(_KILL_AFTER_VARIABLE)
     try:
-        run.first_pass()
-        run.exact_step()
-        run.near_step()
-        run.split_step()
+        steps = list(_STEP_STATE)
+        if resume is not None:
+            run.restore(resume)
+            run.stages["resumed_after"] = {"step": resume}
+        for step in steps[steps.index(resume) + 1 if resume else 0 :]:
+            getattr(run, step)()
+            run.checkpoints.save(step, keys[step], run.state(step))
+            if kill_after == step:
+                os.kill(os.getpid(), signal.SIGKILL)
+        run.stages.pop("resumed_after", None)
         run.tokenize_step()
         run.pack_step()
         ledger = run.ledger_step()
@@ -618,6 +675,8 @@ def run_pipeline(
         shutil.rmtree(run.work)
         write_json_atomic(run.partial / MANIFEST_FILE, manifest)
         _publish(run.partial, run.output)
+    except KeyboardInterrupt:
+        raise  # keep the partial folder: the next run resumes from its last checkpoint
     except BaseException:
         shutil.rmtree(run.partial, ignore_errors=True)
         raise
