@@ -8,10 +8,13 @@ reader memory-maps them (no shard is loaded whole), gives random access to
 ``(x, y)`` pairs (``x = w[:-1]``, ``y = w[1:]``), and yields shuffled batches
 with rank/world-size partitioning that can resume from any step.
 
-Shuffle order is a pure function of ``(seed, epoch)``: every window gets the
-key ``splitmix64(index + mix(seed, epoch))`` (Steele, Lea & Flood, "Fast
-splittable pseudorandom number generators", OOPSLA 2014 — the SplitMix64
-finaliser) and windows are taken in key order. Unlike ``numpy.random``
+Shuffle order is a pure function of ``(seed, epoch)``: with all arithmetic
+modulo 2**64 and ``splitmix64(x)`` one step of SplitMix64 from state ``x``
+(add ``0x9E3779B97F4A7C15``, then the finaliser; Steele, Lea & Flood, "Fast
+splittable pseudorandom number generators", OOPSLA 2014), the epoch gets
+``base = splitmix64(seed * 0x100000001B3 + epoch)``, window ``index`` gets the
+key ``splitmix64(index + base)``, and windows are taken in key order (equal
+keys, which need a 64-bit collision, by index). Unlike ``numpy.random``
 streams, which NumPy does not promise to keep across versions, this order
 is the same on every machine and NumPy version, so a run resumes exactly.
 
@@ -33,10 +36,10 @@ from typing import Any
 import numpy as np
 
 from corpusprep.errors import IntegrityError
-from corpusprep.hashing import hash_file
 from corpusprep.manifest import read_manifest
+from corpusprep.shards import ShardInfo, read_shard
 
-__all__ = ["SplitWindows", "open_split", "shuffle_order", "safe_member"]
+__all__ = ["SplitWindows", "open_split", "safe_member", "shuffle_order"]
 
 _MASK = np.uint64(0xFFFFFFFFFFFFFFFF)
 
@@ -198,18 +201,20 @@ class SplitWindows:
 
         return torch_dataset(self)
 
-    def as_hf_dataset(self) -> Any:
-        """An HF ``datasets.Dataset`` with ``input_ids`` and ``labels`` columns."""
+    def as_hf_dataset(self, *, rows_per_chunk: int = 4096, cache_dir: str | None = None) -> Any:
+        """An HF ``datasets.Dataset`` with ``input_ids`` and ``labels`` columns (see :func:`hf_dataset`)."""
         from corpusprep.adapters import hf_dataset
 
-        return hf_dataset(self)
+        return hf_dataset(self, rows_per_chunk=rows_per_chunk, cache_dir=cache_dir)
 
 
 def open_split(output: Path | str, split: str, *, verify: bool = True) -> SplitWindows:
     """Open the windows of ``split`` in a finished output folder.
 
-    With ``verify`` every shard's size and XXH3-128 are checked against the
-    manifest first (one sequential read of each shard).
+    Every shard's ``.npy`` header (shape, dtype) and size are always checked
+    against the manifest, and the shards' rows against the split's window
+    count; this reads only the headers. With ``verify`` each shard's XXH3-128
+    is checked too (one sequential read of each shard).
     """
     folder = Path(output)
     manifest = read_manifest(folder)
@@ -217,15 +222,34 @@ def open_split(output: Path | str, split: str, *, verify: bool = True) -> SplitW
     if split not in splits:
         raise KeyError(f"{folder}: no split {split!r}; the manifest has {', '.join(splits) or 'none'}")
     windows = manifest["windows"]
+    length, dtype = int(windows["length"]), str(windows["dtype"])
     shards = []
     for shard in splits[split]["shards"]:
         path = safe_member(folder, shard["file"])
-        if verify:
-            size, digest = hash_file(path)
-            if size != shard["bytes"] or digest != shard["xxh3_128"]:
-                raise IntegrityError(
-                    f"{path}: shard does not match the manifest (bytes {size} vs {shard['bytes']}, "
-                    f"xxh3_128 {digest} vs {shard['xxh3_128']}); the output was altered or damaged"
-                )
-        shards.append(_Shard(path, int(shard["shape"][0])))
-    return SplitWindows(folder, split, shards, int(windows["length"]), windows["dtype"])
+        shape = (int(shard["shape"][0]), int(shard["shape"][1]))
+        if shape[1] != length + 1 or shard["dtype"] != dtype:
+            raise IntegrityError(
+                f"{folder}: the manifest lists {shard['file']} with shape {list(shape)} and dtype "
+                f"{shard['dtype']}, but its windows are {length + 1} tokens of {dtype}; "
+                "the manifest was altered"
+            )
+        expected = ShardInfo(
+            file=path.name,
+            split=split,
+            shape=shape,
+            dtype=dtype,
+            xxh3_128=str(shard["xxh3_128"]),
+            bytes=int(shard["bytes"]),
+        )
+        try:
+            read_shard(path, expected=expected, check_hash=verify)
+        except FileNotFoundError:
+            raise IntegrityError(f"{path}: shard listed in the manifest is missing") from None
+        shards.append(_Shard(path, shape[0]))
+    listed = int(splits[split].get("windows", sum(shard.rows for shard in shards)))
+    if listed != sum(shard.rows for shard in shards):
+        raise IntegrityError(
+            f"{folder}: split {split!r} has {listed} windows in the manifest but its shards hold "
+            f"{sum(shard.rows for shard in shards)}; the manifest was altered"
+        )
+    return SplitWindows(folder, split, shards, length, dtype)
