@@ -34,11 +34,13 @@ A user's file (kind ``"file"``)
 resolved against the current directory. It is used as it is, with these rules:
 
 - ``tokenizer.end_of_document`` (and ``tokenizer.begin_of_document`` when set)
-  must be *special* added tokens of the file;
-- ``tokenizer.pad``, when the file has a special token of that string, is it;
-  when the file has no token of that string, it is added as one special token
-  with the next free id; an ordinary (non-special) token of that string is
-  refused, because text could produce it;
+  must be a *special* added token of the file, or a vocabulary entry that text
+  cannot produce (as in the files corpusprep writes): not built by a BPE merge,
+  and not produced when the string is encoded alone or between other text;
+- ``tokenizer.pad`` follows the same rule, except that a string the file does
+  not have at all is added as one special token with the next free id;
+- an ordinary (non-special) added token is always refused: HF matches it in
+  any text;
 - ids are made with ``add_special_tokens=False`` (no post-processor tokens)
   and ``encode_special_tokens=True`` (special-token strings inside a document
   are ordinary text), and the file's truncation and padding are switched off.
@@ -246,35 +248,40 @@ def load_tokenizer_file(config: TokenizerConfig) -> JsonTokenizer:
         raise DefinitionError(f"{shown}: not an HF tokenizers JSON file: {error}") from None
     hf.no_truncation()
     hf.no_padding()
-    added = {
-        token.content: (int(token_id), bool(token.special))
-        for token_id, token in sorted(hf.get_added_tokens_decoder().items())
-    }
-    special_strings = ", ".join(repr(content) for content, (_, special) in added.items() if special) or "none"
-    roles = [role for role in ("end_of_document", "begin_of_document") if getattr(config, role)]
+    added = {token.content: bool(token.special) for _, token in sorted(hf.get_added_tokens_decoder().items())}
+    special_strings = ", ".join(repr(content) for content, special in added.items() if special) or "none"
+    built = _merge_results(json.loads(text).get("model") or {})
+    roles = [role for role in ("end_of_document", "begin_of_document", "pad") if getattr(config, role)]
+    pad_added = False
     for role in roles:
         value = getattr(config, role)
-        if not added.get(value, (0, False))[1]:
-            raise DefinitionError(
-                f"tokenizer.{role} = {value!r}: not a special token of {config.file}; "
-                f"its special tokens are: {special_strings}. Set tokenizer.{role} to one of them."
-            )
-    pad_added = False
-    if config.pad in added:
-        if not added[config.pad][1]:
-            raise DefinitionError(
-                f"tokenizer.pad = {config.pad!r}: an ordinary added token of {config.file}, so text could "
-                f"produce it; choose a special token of the file ({special_strings}) or a new string"
-            )
-    elif hf.token_to_id(config.pad) is not None:
-        raise DefinitionError(
-            f"tokenizer.pad = {config.pad!r}: an ordinary token of {config.file}'s vocabulary, so text could "
-            f"produce it; choose a special token of the file ({special_strings}) or a new string"
+        where = f"tokenizer.{role} = {value!r}"
+        choose = f"choose a special token of the file ({special_strings})" + (
+            " or a string the file does not have" if role == "pad" else ""
         )
-    else:
-        hf.add_special_tokens([AddedToken(config.pad, special=True, normalized=False)])
-        pad_added = True
-    roles.append("pad")
+        if value in added:
+            if not added[value]:
+                raise DefinitionError(
+                    f"{where}: an ordinary added token of {config.file}: text produces it; {choose}"
+                )
+        elif hf.token_to_id(value) is None:
+            if role != "pad":
+                raise DefinitionError(f"{where}: not a special token of {config.file}; {choose}")
+            hf.add_special_tokens([AddedToken(value, special=True, normalized=False)])
+            pad_added = True
+        elif value in built:
+            raise DefinitionError(
+                f"{where}: an ordinary token of {config.file}'s vocabulary that its merges build from text; "
+                + choose
+            )
+    ids = {role: hf.token_to_id(getattr(config, role)) for role in roles}
+    for role in roles:
+        others = [other for other in roles if other != role and ids[other] == ids[role]]
+        if others:
+            raise DefinitionError(
+                f"tokenizer.{role} = {getattr(config, role)!r}: {config.file} gives it the id {ids[role]}, "
+                f"the same as tokenizer.{others[0]}; every special token needs its own id"
+            )
     vocab = hf.get_vocab(with_added_tokens=True)
     size = max(vocab.values()) + 1 if vocab else 0
     if size > _MAX_IDS:
@@ -287,7 +294,7 @@ def load_tokenizer_file(config: TokenizerConfig) -> JsonTokenizer:
     tokenizer = JsonTokenizer(
         kind="file",
         json_text=_pretty(hf.to_str()),
-        special_tokens=tuple((role, str(getattr(config, role))) for role in _role_order(roles)),
+        special_tokens=tuple((role, str(getattr(config, role))) for role in roles),
         encode_special_tokens=True,
         facts_json=json.dumps(facts),
     )
@@ -297,11 +304,15 @@ def load_tokenizer_file(config: TokenizerConfig) -> JsonTokenizer:
         if any(token_id in ids_.tolist() for ids_ in tokenizer.encode_batch(probes)):
             raise DefinitionError(
                 f"tokenizer.{role} = {value!r}: {config.file} makes this token from plain text even with "
-                "special-token strings treated as text, so document boundaries would be ambiguous"
+                "special-token strings treated as text, so document boundaries would be ambiguous; "
+                "choose a special token of the file"
             )
     return tokenizer
 
 
-def _role_order(roles: list[str]) -> list[str]:
-    order = ("end_of_document", "begin_of_document", "pad")
-    return [role for role in order if role in roles]
+def _merge_results(model: dict[str, Any]) -> set[str]:
+    """Every token a BPE model's merges build (merges are "a b" strings or [a, b] pairs); empty otherwise."""
+    if model.get("type") != "BPE":
+        return set()
+    pairs = (merge.split(" ", 1) if isinstance(merge, str) else merge for merge in model.get("merges") or [])
+    return {"".join(pair) for pair in pairs}

@@ -121,18 +121,19 @@ class TokenizerConfig:
     end_of_document: str = setting(
         "<eod>",
         "Token placed after every document when packing. Required; 2 or more printable ASCII "
-        "characters without spaces. With kind 'file' it must be a special token of the file.",
+        "characters without spaces. With kind 'file' it must be a special token of the file, or a "
+        "vocabulary entry of it that text cannot produce.",
     )
     begin_of_document: str = setting(
         "",
         "Token placed before every document when packing; '' leaves it out. Same character rule; "
-        "with kind 'file' it must be a special token of the file.",
+        "with kind 'file' the same rule as end_of_document.",
     )
     pad: str = setting(
         "<pad>",
         "Token that fills the last window of a split when pack.tail = 'pad'. Required; same character "
-        "rule. With kind 'file' it is the file's special token of that string, or, when the file has "
-        "no token of that string, one added special token after the file's ids.",
+        "rule. With kind 'file' the same rule as end_of_document, except that a string the file does not "
+        "have is added as one special token after the file's ids.",
     )
     unknown: str = setting(
         "<unk>",

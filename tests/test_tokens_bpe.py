@@ -314,16 +314,11 @@ def test_missing_or_corrupt_file_names_the_key(tmp_path: Path) -> None:
 
 
 def test_file_whose_specials_clash(tmp_path: Path) -> None:
-    # Two vocabulary entries and two special added tokens on one id: HF keeps one of the added
-    # tokens, so the other string is an ordinary entry sharing the id; it is refused.
-    added = [
-        {"id": 2, "content": content, "single_word": False, "lstrip": False, "rstrip": False}
-        | {"normalized": False, "special": True}
-        for content in ("<end>", "<fill>")
-    ]
+    # Two vocabulary entries on one id; a pre-tokenizer that cuts "<end>" into "<", "end", ">" so
+    # that text cannot produce either: the roles would still be indistinguishable, so it is refused.
     document = {
         "version": "1.0",
-        "added_tokens": added,
+        "pre_tokenizer": {"type": "Whitespace"},
         "model": {
             "type": "WordLevel",
             "vocab": {"a": 0, "<unk>": 1, "<end>": 2, "<fill>": 2},
@@ -333,5 +328,33 @@ def test_file_whose_specials_clash(tmp_path: Path) -> None:
     path = tmp_path / "clash.json"
     path.write_text(json.dumps(document), encoding="utf-8")
     config = TokenizerConfig(kind="file", file=str(path), end_of_document="<end>", pad="<fill>")
-    with pytest.raises(DefinitionError, match=r"^tokenizer.end_of_document = '<end>': not a special token"):
+    with pytest.raises(
+        DefinitionError, match=r"^tokenizer.end_of_document = '<end>': .*same as tokenizer.pad"
+    ):
         build_tokenizer(config)
+
+
+def test_file_whose_vocabulary_makes_the_special_from_text(tmp_path: Path) -> None:
+    # A word-level file without a pre-tokenizer: the whole text "<end>" is looked up and found.
+    document = {
+        "version": "1.0",
+        "model": {"type": "WordLevel", "vocab": {"a": 0, "<unk>": 1, "<end>": 2}, "unk_token": "<unk>"},
+    }
+    path = tmp_path / "whole.json"
+    path.write_text(json.dumps(document), encoding="utf-8")
+    config = TokenizerConfig(kind="file", file=str(path), end_of_document="<end>", pad="<fill>")
+    with pytest.raises(DefinitionError, match=r"^tokenizer.end_of_document = '<end>': .*from plain text"):
+        build_tokenizer(config)
+
+
+def test_a_corpusprep_tokenizer_file_can_be_brought_back(
+    tmp_path: Path, bpe: JsonTokenizer, real_texts: list[str]
+) -> None:
+    # Our own files keep the specials as vocabulary entries that text cannot produce.
+    bpe.save(tmp_path / "ours.json")
+    config = TokenizerConfig(kind="file", file=str(tmp_path / "ours.json"), begin_of_document="<bod>")
+    brought = build_tokenizer(config)
+    assert brought.special_ids() == bpe.special_ids()
+    assert brought.vocab_size == bpe.vocab_size
+    for first, second in zip(bpe.encode_batch(real_texts), brought.encode_batch(real_texts), strict=True):
+        assert np.array_equal(first, second)
