@@ -163,19 +163,12 @@ def _mix(values: np.ndarray) -> np.ndarray:
     return mixed
 
 
-@functools.lru_cache(maxsize=32)
-def _power_table(base: int, size: int) -> np.ndarray:
-    values = np.full(size, base, dtype=np.uint64)
-    values[0] = 1
-    table = np.cumprod(values, dtype=np.uint64)
-    table.flags.writeable = False
-    return table
-
-
 def _powers(base: int, count: int) -> np.ndarray:
-    """``base^0 .. base^(count-1)`` modulo 2^64 (a read-only view of a table sized to a power of two)."""
-    size = 1 << max(count - 1, 1).bit_length()
-    return _power_table(base, size)[:count]
+    """``base^0 .. base^(count-1)`` modulo 2^64."""
+    values = np.full(count, base, dtype=np.uint64)
+    if count:
+        values[0] = 1
+    return np.cumprod(values, dtype=np.uint64, out=values)
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
