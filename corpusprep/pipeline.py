@@ -1,6 +1,6 @@
 """The whole job: read, clean, exact, near, split, tokenize, pack, ledger, manifest.
 
-Per-batch stages run through :func:`corpusprep.pool.ordered_map`; the
+Per-batch stages run through a mapper (:mod:`corpusprep.pool`; local processes by default); the
 global steps (exact duplicates, near-duplicate clusters, split, tokenizer
 and packing) are barriers between them. Between the two passes over the
 corpus the cleaned documents live in an Arrow IPC file in the run's work
@@ -40,7 +40,7 @@ from corpusprep.ledger import LEDGER_FILE, write_ledger
 from corpusprep.manifest import MANIFEST_FILE, SCHEMA_VERSION, write_json_atomic
 from corpusprep.near import NearConfig, document_shingles, find_clusters, signature_batch
 from corpusprep.pack import document_order, pack_split, smallest_dtype
-from corpusprep.pool import ordered_map
+from corpusprep.pool import Mapper, local_mapper
 from corpusprep.read import InputFile, read_folder
 from corpusprep.schema import DOC_SCHEMA, EMPTY, EXACT_COPY, KEPT, NEAR_COPY, REJECTED, STATUSES
 from corpusprep.split import SPLITS, assign_splits, components
@@ -175,12 +175,12 @@ def _check_output(output: Path, force: bool) -> None:
 class _Run:
     """State of one run; every method is one step of :func:`run_pipeline`."""
 
-    def __init__(self, definition: Definition, workers: int, progress: ProgressCallback | None) -> None:
+    def __init__(self, definition: Definition, mapper: Mapper, progress: ProgressCallback | None) -> None:
         assert definition.input is not None and definition.output is not None
         self.definition = definition
         self.input: Path = definition.input
         self.output: Path = definition.output
-        self.workers = workers
+        self.mapper = mapper
         self.progress = progress or (lambda stage, done, total: None)
         self.partial = self.output.with_name(f".{self.output.name}.partial")
         self.work = self.partial / _WORK
@@ -233,7 +233,7 @@ class _Run:
             pa.ipc.new_file(sink, DOC_SCHEMA) as writer,
             open(self.work / "signatures.raw", "wb") as signature_file,
         ):
-            for prepared in ordered_map(prepare, batches, workers=self.workers):
+            for prepared in self.mapper(prepare, batches):
                 batch = prepared.batch
                 writer.write_batch(batch)
                 status = batch.column("status").to_pylist()
@@ -440,7 +440,7 @@ class _Run:
                 name: stack.enter_context(open(self.work / f"tokens-{name}.raw", "wb")) for name in SPLITS
             }
             done = 0
-            for batch_index, encoded in enumerate(ordered_map(encode, kept_texts(), workers=self.workers)):
+            for batch_index, encoded in enumerate(self.mapper(encode, kept_texts())):
                 for row, ids in zip(row_lists[batch_index], encoded, strict=True):
                     split = self.split_of[row]
                     assert split is not None
@@ -636,8 +636,13 @@ def run_pipeline(
     workers: int = 1,
     force: bool = False,
     progress: ProgressCallback | None = None,
+    mapper: Mapper | None = None,
 ) -> RunResult:
-    """Run ``definition`` end to end and publish its output folder."""
+    """Run ``definition`` end to end and publish its output folder.
+
+    Per-batch work runs on ``workers`` local processes, or through ``mapper``
+    when one is given (another engine); the output bytes are the same either way.
+    """
     if definition.input is None:
         raise InputError(
             f"{definition.source}: no input folder: set `input` in the definition or pass --input"
@@ -649,7 +654,7 @@ def run_pipeline(
     if not definition.input.is_dir():
         raise InputError(f"{definition.input}: the input folder does not exist or is not a folder")
     _check_output(definition.output, force)
-    run = _Run(definition, workers, progress)
+    run = _Run(definition, mapper or local_mapper(workers), progress)
     keys = step_keys(definition.resolved(), input_fingerprint(definition.input), __version__)
     resume = run.checkpoints.resume_point(keys) if run.partial.exists() else None
     if resume is None and run.partial.exists():

@@ -16,14 +16,18 @@ from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
-from typing import TypeVar
+from typing import Any, TypeVar
 
 from corpusprep.errors import WorkerDiedError
 
-__all__ = ["ordered_map"]
+__all__ = ["Mapper", "local_mapper", "ordered_map"]
 
 In = TypeVar("In")
 Out = TypeVar("Out")
+
+#: ``mapper(function, items)`` yields ``function(item)`` for every item, in input order.
+#: The local engine is :func:`local_mapper`; another engine (a cluster) plugs in the same way.
+Mapper = Callable[[Callable[[Any], Any], Iterable[Any]], Iterator[Any]]
 
 
 def ordered_map(function: Callable[[In], Out], items: Iterable[In], *, workers: int) -> Iterator[Out]:
@@ -59,3 +63,12 @@ def ordered_map(function: Callable[[In], Out], items: Iterable[In], *, workers: 
         finally:
             for future in pending:
                 future.cancel()
+
+
+def local_mapper(workers: int) -> Mapper:
+    """The local engine: :func:`ordered_map` on ``workers`` processes."""
+
+    def mapper(function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
+        return ordered_map(function, items, workers=workers)
+
+    return mapper
