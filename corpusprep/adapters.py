@@ -16,6 +16,12 @@ if TYPE_CHECKING:
 
 __all__ = ["TorchWindows", "hf_dataset", "torch_dataset"]
 
+_INT32_MAX = 2**31 - 1
+
+
+class _IdsTooLarge(ValueError):
+    """A token id does not fit the HF dataset's int32 columns."""
+
 
 class TorchWindows:
     """A map-style dataset for ``torch.utils.data.DataLoader``: item ``i`` is ``(x, y)`` as int64 tensors.
@@ -50,7 +56,9 @@ def hf_dataset(windows: SplitWindows, *, rows_per_chunk: int = 4096, cache_dir: 
     """An HF ``datasets.Dataset`` with ``input_ids`` and ``labels`` (fixed-length int32 sequences).
 
     Rows are written through ``Dataset.from_generator`` chunk by chunk, so memory
-    stays bounded; the data is copied into the HF cache (``cache_dir``).
+    stays bounded; the data is copied into the HF cache (``cache_dir``). The
+    cache entry is keyed by the shards' hashes as well as their paths, so a
+    rewritten output is never answered from a stale cache.
     """
     import datasets
 
@@ -62,12 +70,27 @@ def hf_dataset(windows: SplitWindows, *, rows_per_chunk: int = 4096, cache_dir: 
         }
     )
 
-    def rows(chunk_size: int) -> Iterator[dict[str, list[int]]]:
+    def rows(chunk_size: int, shard_hashes: str) -> Iterator[dict[str, list[int]]]:
+        # shard_hashes is not read: as a generator argument it enters the HF cache fingerprint.
         for start in range(0, len(windows), chunk_size):
-            block = windows.take(np.arange(start, min(start + chunk_size, len(windows)))).astype(np.int32)
+            stored = windows.take(np.arange(start, min(start + chunk_size, len(windows))))
+            if stored.dtype.itemsize == 4 and len(stored) and int(stored.max()) > _INT32_MAX:
+                raise _IdsTooLarge(
+                    f"{windows.folder}: split {windows.split!r} holds token id {int(stored.max())}, more "
+                    f"than the int32 columns of the HF dataset hold ({_INT32_MAX}); read it with open_split"
+                )
+            block = stored.astype(np.int32)
             for window in block:
                 yield {"input_ids": window[:-1].tolist(), "labels": window[1:].tolist()}
 
-    return datasets.Dataset.from_generator(
-        rows, gen_kwargs={"chunk_size": rows_per_chunk}, features=features, cache_dir=cache_dir
-    )
+    try:
+        return datasets.Dataset.from_generator(
+            rows,
+            gen_kwargs={"chunk_size": rows_per_chunk, "shard_hashes": " ".join(windows.shard_hashes)},
+            features=features,
+            cache_dir=cache_dir,
+        )
+    except datasets.exceptions.DatasetGenerationError as error:
+        if isinstance(error.__cause__, _IdsTooLarge):
+            raise error.__cause__ from None
+        raise

@@ -92,6 +92,7 @@ def shuffle_order(count: int, seed: int, epoch: int) -> np.ndarray:
 class _Shard:
     path: Path
     rows: int
+    xxh3_128: str  # as the manifest lists it
 
 
 class SplitWindows:
@@ -105,6 +106,11 @@ class SplitWindows:
 
     def __len__(self) -> int:
         return int(self._starts[-1])
+
+    @property
+    def shard_hashes(self) -> tuple[str, ...]:
+        """The manifest's XXH3-128 of each shard, in order: what identifies the content read."""
+        return tuple(shard.xxh3_128 for shard in self._shards)
 
     def __getstate__(self) -> dict[str, Any]:
         # Memory maps are reopened in the receiving process (e.g. DataLoader workers).
@@ -245,7 +251,7 @@ def open_split(output: Path | str, split: str, *, verify: bool = True) -> SplitW
             read_shard(path, expected=expected, check_hash=verify)
         except FileNotFoundError:
             raise IntegrityError(f"{path}: shard listed in the manifest is missing") from None
-        shards.append(_Shard(path, shape[0]))
+        shards.append(_Shard(path, shape[0], expected.xxh3_128))
     listed = int(splits[split].get("windows", sum(shard.rows for shard in shards)))
     if listed != sum(shard.rows for shard in shards):
         raise IntegrityError(
