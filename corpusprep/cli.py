@@ -230,3 +230,42 @@ def main(argv: list[str] | None = None) -> Any:
     except KeyboardInterrupt:
         typer.echo("corpusprep: interrupted", err=True)
         sys.exit(EXIT_INTERRUPTED)
+
+
+@app.command()
+def report(
+    output: Annotated[Path, typer.Argument(help="A finished output folder.")],
+    to: Annotated[
+        Path | None,
+        typer.Option("--to", help="Write the page here instead of beside the folder (OUTPUT.report.html)."),
+    ] = None,
+    audit_result: Annotated[
+        Path | None,
+        typer.Option(
+            "--audit",
+            help="An audit result saved with `corpusprep audit OUTPUT --json`; by default "
+            "OUTPUT.audit.json beside the folder or audit.json inside it is shown when present.",
+        ),
+    ] = None,
+    debug: DebugOption = False,
+) -> None:
+    """Write one self-contained HTML page of figures and tables describing a finished output.
+
+    The page is built from the output folder alone, needs no network, and by default is
+    written beside the folder so the audited output stays unchanged.
+    """
+
+    def action() -> None:
+        from corpusprep.report import ReportConfig, ReportError, write_report
+
+        if not (output / "manifest.json").is_file():
+            _fail(f"{output}: no manifest.json; not a finished corpusprep output", EXIT_USAGE)
+        try:
+            path = write_report(output, to, ReportConfig(audit=audit_result))
+        except ReportError as error:
+            if debug:
+                traceback.print_exc()
+            _fail(str(error), EXIT_USAGE)
+        typer.echo(f"report written to {path} ({path.stat().st_size:,} bytes)")
+
+    _guard(debug, action)
