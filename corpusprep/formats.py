@@ -161,11 +161,18 @@ def record_from_object(value: Any, *, number: int, line: int, names: FieldNames)
     Record(number=1, line=1, given_id='3', group=None, text='hi', reason=None)
     >>> record_from_object([1], number=2, line=5, names=FieldNames("text")).reason
     'not_an_object: found an array'
+
+    An id or group nested too deeply to write back as JSON makes the record
+    ``invalid_json: nesting too deep``, as a slightly deeper value would from the parser.
     """
     if not isinstance(value, dict):
         return Record(number, line, reason=f"not_an_object: found {_json_kind(value)}")
-    given_id = label(value.get(names.id)) if names.id else None
-    group = label(value.get(names.group)) if names.group else None
+    try:
+        given_id = label(value.get(names.id)) if names.id else None
+        group = label(value.get(names.group)) if names.group else None
+    except RecursionError:
+        # The parser accepted the value a few stack frames higher up than json.dumps needs.
+        return Record(number, line, reason="invalid_json: nesting too deep")
     if names.text not in value:
         return Record(number, line, given_id=given_id, group=group, reason="missing_text_field")
     text = value[names.text]
@@ -202,7 +209,8 @@ def _json_error(error: Exception, *, with_line: bool) -> str:
         return "nesting too deep"
     if isinstance(error, json.JSONDecodeError):
         where = f"line {error.lineno}, column {error.colno}" if with_line else f"column {error.colno}"
-        return f"{error.msg} at {where}"
+        # Python's json ends one message with "at" already: "Invalid control character at".
+        return f"{error.msg.removesuffix(' at')} at {where}"
     return str(error)
 
 

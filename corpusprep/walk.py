@@ -246,7 +246,8 @@ def _link(path: str, shown: str, root_real: str, selected: Callable[[str], bool]
         if not selected(shown):
             return None
         if error.errno == errno.ELOOP:
-            return _Found(Entry(shown, path, "rejected", "link_loop: the link resolves to itself"), "", True)
+            reason = "link_loop: the link leads back to itself (a cycle of links)"
+            return _Found(Entry(shown, path, "rejected", reason), "", True)
         detail = "the link's target does not exist" if error.errno == errno.ENOENT else str(error.strerror)
         return _Found(Entry(shown, path, "rejected", f"unreadable: {detail}"), "", True)
     is_folder = os.path.isdir(target)
