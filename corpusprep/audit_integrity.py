@@ -52,6 +52,7 @@ __all__ = [
     "DAMAGE",
     "LEAKAGE",
     "OUTPUT_FORMAT",
+    "OVERLAP",
     "CheckResult",
     "Finding",
     "Integrity",
@@ -61,6 +62,9 @@ __all__ = [
 
 DAMAGE = "damage"
 LEAKAGE = "leakage"
+#: Reported but not failing: evaluation documents sharing some long n-grams with train, below the
+#: contamination fraction (templated text shares boilerplate sentences; see audit_leakage).
+OVERLAP = "overlap"
 #: The ``"format"`` value of a corpusprep manifest.
 OUTPUT_FORMAT = "corpusprep output"
 _REQUIRED_KEYS = ("definition", "definition_hash", "ledger", "tokenizer", "windows", "splits")

@@ -43,7 +43,7 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 
-from corpusprep.audit_integrity import DAMAGE, LEAKAGE, Finding, ShardFile
+from corpusprep.audit_integrity import DAMAGE, LEAKAGE, OVERLAP, Finding, ShardFile
 from corpusprep.lsh import band_keys, candidate_pairs
 from corpusprep.minhash import EMPTY_VALUE, pair_similarity
 from corpusprep.ngrams import HashedChunk, StreamTables, complete_documents, hash_stream_chunk, hash_texts
@@ -328,6 +328,7 @@ def ngram_overlap(
     chunk_rows: int = 4096,
     train_total: int | None = None,
     progress: Progress | None = None,
+    contaminated_at: float = 0.0,
 ) -> NgramResult:
     """Long n-gram overlap of validation, test and the outside items with train.
 
@@ -336,6 +337,13 @@ def ngram_overlap(
     text)`` pairs; ``train_total`` (train tokens, for the progress bar) may be None.
     Also checks each split's documents against the ledger's
     token counts (``stream_mismatch``).
+
+    A validation or test document sharing n-grams with train is *contaminated*
+    (severity leakage) when at least ``contaminated_at`` of its n-gram positions
+    occur in train, else the finding is an *overlap* note (reported, not
+    failing). ``contaminated_at = 0`` makes any shared n-gram contamination,
+    the rule of Brown et al. 2020, App. C (from memory). Outside items
+    (``against``) always follow that rule: any shared n-gram is leakage.
     """
     report = progress or (lambda stage, done, total: None)
     scan = _Scan(tables, ngram, pad_id, chunk_rows)
@@ -406,41 +414,55 @@ def ngram_overlap(
         "train_tokens": train_tokens,
         "evaluation_distinct_ngrams": int(evaluation.size),
         "matched_distinct_ngrams": int(np.count_nonzero(first_train >= 0)),
+        "contaminated_at": contaminated_at,
         "sides": {},
     }
     for side in sides:
-        documents = tested = flagged = 0
+        documents = tested = flagged = contaminated_documents = 0
         for chunk in side_chunks(side):
             position = members.find(chunk.hashes)
             train_of = np.where(position >= 0, first_train[position], -1)
             owner = chunk.document[chunk.first_word]
             tested += int(np.count_nonzero(np.diff(owner)) + 1) if owner.size else 0
             matched = np.flatnonzero(train_of >= 0)  # owner is non-decreasing: n-grams come in word order
+            all_owners, all_counts = np.unique(owner, return_counts=True)
+            positions = dict(zip(all_owners.tolist(), all_counts.tolist(), strict=True))
             owners, starts, counts = np.unique(owner[matched], return_index=True, return_counts=True)
             for document, start, count in zip(owners.tolist(), starts.tolist(), counts.tolist(), strict=True):
+                fraction = count / positions[document]
+                contaminated = side.name == "against" or fraction >= contaminated_at
                 example = int(matched[start])
                 train_document = int(train_of[example])
                 record = side.record_ids[documents + document]
                 text = chunk.ngram_text(example)
                 findings.append(
-                    _leak(
-                        side.kind,
-                        f"{record} ({side.name}) shares {count} {ngram}-gram(s) with train, e.g. "
-                        f"{text!r} (also in {train_record[train_document]})",
-                        split=side.name,
-                        record_id=record,
-                        shared_ngrams=int(count),
-                        ngram_text=text,
-                        train_record_id=train_record[train_document],
+                    Finding(
+                        kind=side.kind,
+                        severity=LEAKAGE if contaminated else OVERLAP,
+                        message=f"{record} ({side.name}) shares {count} {ngram}-gram(s) with train "
+                        f"({fraction:.0%} of its {ngram}-grams), e.g. {text!r} "
+                        f"(also in {train_record[train_document]})",
+                        details={
+                            "split": side.name,
+                            "record_id": record,
+                            "shared_ngrams": int(count),
+                            "shared_fraction": round(fraction, 4),
+                            "contaminated": contaminated,
+                            "ngram_text": text,
+                            "train_record_id": train_record[train_document],
+                        },
                     )
                 )
                 flagged += 1
+                contaminated_documents += int(contaminated)
             documents += chunk.documents
         statistics["sides"][side.name] = {
             "documents": documents,
             "documents_with_ngrams": tested,
             "documents_sharing_ngrams": flagged,
             "fraction": flagged / documents if documents else 0.0,
+            "documents_contaminated": contaminated_documents,
+            "fraction_contaminated": contaminated_documents / documents if documents else 0.0,
         }
     clock.append(time.perf_counter())
     statistics["pass_seconds"] = {

@@ -16,6 +16,8 @@ Heavy imports happen inside the commands so ``--help`` is instant.
 
 from __future__ import annotations
 
+import contextlib
+import enum
 import os
 import sys
 import traceback
@@ -52,6 +54,14 @@ app = typer.Typer(
 )
 
 T = TypeVar("T")
+
+
+class Engine(enum.StrEnum):
+    """Where ``run`` does its per-batch work."""
+
+    local = "local"
+    dask = "dask"
+
 
 DebugOption = Annotated[bool, typer.Option("--debug", help="Show the full traceback of an error.")]
 
@@ -125,9 +135,28 @@ def run(
     ] = _default_workers(),
     force: Annotated[bool, typer.Option("--force", help="Replace a non-empty output folder.")] = False,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress bars and no summary.")] = False,
+    engine: Annotated[
+        Engine,
+        typer.Option(
+            "--engine",
+            help="Where per-batch work runs: local processes, or Dask (a local cluster of --workers "
+            "processes, or the cluster at --scheduler). Output is identical either way.",
+        ),
+    ] = Engine.local,
+    scheduler: Annotated[
+        str | None,
+        typer.Option(
+            "--scheduler",
+            metavar="ADDRESS",
+            help="With --engine dask: connect to this running Dask scheduler (tcp://HOST:PORT); "
+            "--workers is then ignored.",
+        ),
+    ] = None,
     debug: DebugOption = False,
 ) -> None:
     """Run a pipeline definition on a raw folder and write shards, ledger and manifest."""
+    if scheduler is not None and engine is not Engine.dask:
+        raise typer.BadParameter("needs --engine dask", param_hint="--scheduler")
 
     def action() -> None:
         from corpusprep.definition import load_definition
@@ -135,8 +164,14 @@ def run(
         from corpusprep.summary import print_summary, progress_printer
 
         definition = load_definition(pipeline).with_folders(input=input, output=output)
-        with progress_printer(enabled=not quiet) as progress:
-            result = run_pipeline(definition, workers=workers, force=force, progress=progress)
+        with contextlib.ExitStack() as stack:
+            mapper = None
+            if engine is Engine.dask:
+                from corpusprep.engine_dask import dask_engine
+
+                mapper = stack.enter_context(dask_engine(scheduler, workers))
+            progress = stack.enter_context(progress_printer(enabled=not quiet))
+            result = run_pipeline(definition, workers=workers, force=force, progress=progress, mapper=mapper)
         if not quiet:
             print_summary(result.manifest, result.output)
 
@@ -182,6 +217,16 @@ def audit(
     json_output: Annotated[
         bool, typer.Option("--json", help="Print one JSON document instead of tables.")
     ] = False,
+    contaminated_at: Annotated[
+        float,
+        typer.Option(
+            "--contaminated-at",
+            min=0.0,
+            max=1.0,
+            help="Fraction of a validation/test document's n-grams found in train that makes it contaminated "
+            "(leakage); below it shared n-grams are reported as overlap. 0 = any shared n-gram.",
+        ),
+    ] = 0.7,
     examples: Annotated[int, typer.Option("--examples", min=0, help="Findings shown per kind.")] = 5,
     skip_ngrams: Annotated[
         bool, typer.Option("--skip-ngrams", help="Leave out the n-gram check (it reads every shard).")
@@ -206,7 +251,13 @@ def audit(
         from corpusprep.summary import progress_printer
 
         try:
-            config = AuditConfig(ngram=ngram, skip_ngrams=skip_ngrams, against=against, text_field=text_field)
+            config = AuditConfig(
+                ngram=ngram,
+                skip_ngrams=skip_ngrams,
+                against=against,
+                text_field=text_field,
+                contaminated_at=contaminated_at,
+            )
             with progress_printer(enabled=not quiet) as progress:
                 report = audit_output(output, config, progress=progress)
         except (NotAnOutputError, AuditInputError) as error:

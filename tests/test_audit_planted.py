@@ -242,6 +242,9 @@ def test_a_test_document_copied_into_train_is_found(copy: Path) -> None:
     pairs = [{d["record_id"] for d in item["documents"]} for item in found["near_copy_across_splits"]]
     assert {test_record, "planted/copy-of-test"} in pairs
     assert test_record in _flagged(found, "shared_ngram")
+    mine = next(item for item in found["shared_ngram"] if item["record_id"] == test_record)
+    # the whole document is in train: contaminated (leakage) at the default fraction, not an overlap note
+    assert mine["contaminated"] is True and mine["shared_fraction"] == 1.0
     assert CliRunner().invoke(app, ["audit", str(copy), "--quiet", "--skip-ngrams"]).exit_code == EXIT_LEAKAGE
 
 
