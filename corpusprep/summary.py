@@ -89,8 +89,11 @@ def print_overview(folder: Path, *, show: int = 0, split: str = "train") -> None
 
     A decoded window is printed as its input (``x = w[:-1]``) and the target's
     last token, so the one-token shift is visible: the target is the input
-    moved left by one token, plus the token after the input's end.
+    moved left by one token, plus the token after the input's end. Decoded
+    text is printed as a Python literal on one logical line (no markup, no
+    emoji codes, no inserted line breaks), so it can be compared and copied.
     """
+    from rich.text import Text
     from tokenizers import Tokenizer
 
     from corpusprep.manifest import read_manifest
@@ -99,18 +102,38 @@ def print_overview(folder: Path, *, show: int = 0, split: str = "train") -> None
     console = Console()
     manifest = read_manifest(folder)
     ledger = manifest["ledger"]
+    windows_info, tokenizer_info = manifest["windows"], manifest["tokenizer"]
+    if show > 0 and split not in manifest["splits"]:
+        raise KeyError(f"{folder}: no split {split!r}; the manifest has {', '.join(manifest['splits'])}")
     console.print(
-        f"{folder}: {ledger['read']:,} records read, {ledger['kept']:,} kept, {ledger['removed']:,} removed, "
-        f"{ledger['rejected']:,} rejected; windows of {manifest['windows']['stored_length']} tokens "
-        f"({manifest['windows']['dtype']}), tokenizer {manifest['tokenizer']['kind']}"
+        Text(
+            f"{folder}: {ledger['read']:,} records read, {ledger['kept']:,} kept, {ledger['removed']:,} "
+            f"removed, {ledger['rejected']:,} rejected; windows of {windows_info['stored_length']} tokens "
+            f"({windows_info['dtype']}), input = {windows_info['input']}, target = {windows_info['target']}; "
+            f"tokenizer {tokenizer_info['kind']} (vocabulary {tokenizer_info.get('vocab_size', '?')})"
+        )
     )
-    shards = Table(title="Shards", show_edge=False)
-    for column in ("file", "split", "windows", "dtype", "bytes", "xxh3_128"):
-        shards.add_column(column, justify="right" if column in ("windows", "bytes") else "left")
+    splits = Table(title="Splits", show_edge=False)
+    for column in ("split", "documents", "tokens", "windows", "pad", "dropped", "shards"):
+        splits.add_column(column, justify="left" if column == "split" else "right", no_wrap=True)
     for name, info in manifest["splits"].items():
+        splits.add_row(
+            name,
+            f"{info['documents']:,}",
+            f"{info['tokens']:,}",
+            f"{info['windows']:,}",
+            f"{info['pad_tokens']:,}",
+            f"{info['dropped_tokens']:,}",
+            f"{len(info['shards']):,}",
+        )
+    console.print(splits)
+    shards = Table(title="Shards (xxh3_128 abbreviated; the manifest has it whole)", show_edge=False)
+    for column in ("file", "windows", "bytes", "xxh3_128"):
+        shards.add_column(column, justify="right" if column in ("windows", "bytes") else "left", no_wrap=True)
+    for info in manifest["splits"].values():
         for shard in info["shards"]:
             shards.add_row(
-                shard["file"], name, f"{shard['shape'][0]:,}", shard["dtype"], f"{shard['bytes']:,}", shard["xxh3_128"]
+                shard["file"], f"{shard['shape'][0]:,}", f"{shard['bytes']:,}", shard["xxh3_128"][:12] + "…"
             )
     console.print(shards)
     if show <= 0:
@@ -120,10 +143,11 @@ def print_overview(folder: Path, *, show: int = 0, split: str = "train") -> None
     for index in range(min(show, len(windows))):
         x, y = windows[index]
         console.rule(f"{split} window {index}")
-        console.print("[bold]input [/bold]", repr(tokenizer.decode(x.tolist(), skip_special_tokens=False)), markup=True)
+        text = tokenizer.decode(x.tolist(), skip_special_tokens=False)
+        last = tokenizer.decode([int(y[-1])], skip_special_tokens=False)
+        console.print(Text("input  ", style="bold") + Text(repr(text)), soft_wrap=True)
         console.print(
-            "[bold]target[/bold] = input shifted left by one token; its last token is "
-            + repr(tokenizer.decode([int(y[-1])], skip_special_tokens=False)),
-            markup=True,
+            Text("target ", style="bold") + Text(f"= input shifted left by one token, then {last!r}"),
+            soft_wrap=True,
         )
-        console.print(f"ids x[:8] = {x[:8].tolist()}  y[:8] = {y[:8].tolist()}")
+        console.print(Text(f"ids x[:8] = {x[:8].tolist()}  y[:8] = {y[:8].tolist()}"), soft_wrap=True)
