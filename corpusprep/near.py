@@ -58,7 +58,7 @@ from corpusprep.config import setting
 from corpusprep.errors import DefinitionError
 from corpusprep.lsh import candidate_pairs, choose_bands
 from corpusprep.minhash import MultiplyShift, pair_similarity, signature_matrix
-from corpusprep.shingles import CHAR, UNITS, exact_jaccard, normalize_view, resolve_unit, shingle_keys
+from corpusprep.shingles import CHAR, UNITS, exact_jaccard, shingle_key_stream, shingle_keys
 
 __all__ = [
     "ACTIONS",
@@ -218,13 +218,13 @@ def signature_batch(batch: pa.RecordBatch, config: NearConfig) -> tuple[np.ndarr
             report["not_kept"] += 1
             key_sets.append(empty)
             continue
-        keys = document_shingles(text, config)
+        # Every shingle's key, repeats included: a signature is the same for a multiset and its set.
+        keys, used = shingle_key_stream(text, unit=config.unit, ngram=config.ngram, seed=config.seed)
         key_sets.append(keys)
         if keys.size == 0:
             report["no_shingles"] += 1
             continue
         report["signed"] += 1
-        used = resolve_unit(normalize_view(text), config.unit)
         report["char_unit" if used == CHAR else "word_unit"] += 1
     functions = MultiplyShift(permutations=config.permutations, seed=config.seed)
     return signature_matrix(key_sets, functions), report

@@ -23,15 +23,45 @@ view. An empty view (the text was only punctuation and whitespace) gives no
 shingles at all; such a document has an empty signature and is never a near
 copy of anything, not even of another empty one.
 
-Each shingle is hashed to a ``uint64`` with XXH3-64 of its UTF-8 bytes and an
-explicit seed (:func:`corpusprep.hashing.keyed_hash64`). A document's
-shingles are a **set** (Broder 1997, §2, "Option B"): a shingle that occurs
-twice counts once. :func:`shingle_keys` returns the sorted distinct keys.
+Shingle keys
+------------
+Each shingle is hashed to a ``uint64`` *key* from its units, with an explicit
+``seed``:
+
+* a word's *unit value* is XXH3-64 of its UTF-8 bytes under ``seed``
+  (:func:`corpusprep.hashing.keyed_hash64`); a code point's unit value is the
+  code point itself;
+* a shingle of units u_1 .. u_m (m = ``ngram``, or fewer for a short view) has
+  key h_m, where h_0 = XXH3-64 of ``b"shingle:<unit>:<m>"`` under ``seed``
+  (``<unit>`` is ``word`` or ``char``) and h_j = mix64(h_{j-1} XOR u_j);
+* mix64 is the finaliser of SplitMix64 (Steele, Lea & Flood 2014; constants
+  from Vigna's reference code, cited from memory): z ^= z >> 30;
+  z *= 0xBF58476D1CE4E5B9; z ^= z >> 27; z *= 0x94D049BB133111EB; z ^= z >> 31,
+  all modulo 2^64. It is a bijection of 64-bit words with full avalanche.
+
+So Python touches each word once (one XXH3 call) and the n-gram keys are
+built with a few NumPy passes over the array of unit values, never one call
+per shingle. :func:`shingle_keys_scalar` computes the same keys from the
+strings of :func:`shingle_strings` with Python integers; the tests hold the
+two equal. Two different shingles share a key only by a 64-bit coincidence.
+
+A document's shingles are a **set** (Broder 1997, §2, "Option B"): a
+shingle that occurs twice counts once. :func:`shingle_keys` returns the
+sorted distinct keys; :func:`shingle_key_stream` returns every shingle's key
+in order, repeats included, which is all a MinHash signature needs (the
+minimum of a multiset is the minimum of its set).
+
+The view is computed twice over: :func:`normalize_view` is the readable
+definition (``str.translate`` with a table of every ``P*`` code point), and
+:func:`view_words` the fast path (``bytes.translate`` for ASCII text, a NumPy
+lookup over code points otherwise), tested equal on real text and on every
+code point.
 """
 
 from __future__ import annotations
 
 import functools
+import itertools
 import sys
 import types
 import unicodedata
@@ -52,9 +82,11 @@ __all__ = [
     "is_mostly_unspaced",
     "normalize_view",
     "resolve_unit",
+    "shingle_key_stream",
     "shingle_keys",
     "shingle_keys_scalar",
     "shingle_strings",
+    "view_words",
 ]
 
 WORD = "word"
@@ -109,6 +141,42 @@ def normalize_view(text: str) -> str:
     ''
     """
     return " ".join(text.casefold().translate(_punctuation_table()).split())
+
+
+@functools.cache
+def _separator_table() -> np.ndarray:
+    """Read-only boolean table over all code points: True for ``P*`` and for whitespace (``str.isspace``)."""
+    table = np.zeros(sys.maxunicode + 1, dtype=bool)
+    table[list(_punctuation_table())] = True
+    table[[code for code in range(0x3001) if chr(code).isspace()]] = True  # none lies above U+3000
+    table.flags.writeable = False
+    return table
+
+
+@functools.cache
+def _ascii_table() -> bytes:
+    """``bytes.translate`` table: ASCII upper case to lower case, ASCII separators to a space."""
+    separators = _separator_table()
+    return bytes(
+        0x20 if separators[code] else ord(chr(code).lower()) if code < 0x80 else code for code in range(256)
+    )
+
+
+def view_words(text: str) -> list[bytes]:
+    """The words of :func:`normalize_view` ``(text)`` as UTF-8 bytes (fast path, same result).
+
+    >>> view_words("  A rose, is -- A ROSE!")
+    [b'a', b'rose', b'is', b'a', b'rose']
+    >>> view_words("...!?")
+    []
+    """
+    if text.isascii():
+        # casefold is lower on ASCII; bytes.split() drops the empty pieces around spaces.
+        return text.encode("ascii").translate(_ascii_table()).split()
+    points = np.frombuffer(text.casefold().encode("utf-32-le"), dtype="<u4")
+    spaced = np.where(_separator_table()[points], np.uint32(0x20), points).astype("<u4")
+    # UTF-8 bytes of non-ASCII code points are all >= 0x80, so only the spaces split.
+    return spaced.tobytes().decode("utf-32-le").encode("utf-8").split()
 
 
 def is_mostly_unspaced(view: str) -> bool:
@@ -174,52 +242,106 @@ def shingle_strings(text: str, *, unit: str = WORD, ngram: int = 5) -> list[str]
     return [view[start : start + ngram] for start in range(len(view) - ngram + 1)]
 
 
+_MASK64 = (1 << 64) - 1
+_MIX_FIRST = 0xBF58476D1CE4E5B9  # SplitMix64 finaliser multipliers (Vigna's reference code, from memory)
+_MIX_SECOND = 0x94D049BB133111EB
+
+
+def _start_key(unit: str, count: int, seed: int) -> int:
+    """h_0 of a shingle of ``count`` units of kind ``unit``."""
+    return xxhash.xxh3_64_intdigest(f"shingle:{unit}:{count}".encode("ascii"), seed=seed)
+
+
+def _mix64_scalar(value: int) -> int:
+    value ^= value >> 30
+    value = (value * _MIX_FIRST) & _MASK64
+    value ^= value >> 27
+    value = (value * _MIX_SECOND) & _MASK64
+    return value ^ (value >> 31)
+
+
+def _mix64(values: np.ndarray) -> None:
+    """SplitMix64's finaliser applied in place to a ``uint64`` array (wrapping arithmetic)."""
+    values ^= values >> np.uint64(30)
+    values *= np.uint64(_MIX_FIRST)
+    values ^= values >> np.uint64(27)
+    values *= np.uint64(_MIX_SECOND)
+    values ^= values >> np.uint64(31)
+
+
+def _unit_value_scalar(unit_text: str, unit: str, seed: int) -> int:
+    return keyed_hash64(unit_text, seed) if unit == WORD else ord(unit_text)
+
+
 def shingle_keys_scalar(text: str, *, unit: str = WORD, ngram: int = 5, seed: int = 0) -> np.ndarray:
-    """Slow reference for :func:`shingle_keys`: hash each string from :func:`shingle_strings`."""
-    keys = {keyed_hash64(shingle, seed) for shingle in shingle_strings(text, unit=unit, ngram=ngram)}
+    """Slow reference for :func:`shingle_keys`: the key definition applied to each string of
+    :func:`shingle_strings` with Python integers."""
+    strings = shingle_strings(text, unit=unit, ngram=ngram)
+    if not strings:
+        return np.empty(0, dtype=np.uint64)
+    used = resolve_unit(normalize_view(text), unit)
+    keys = set()
+    for shingle in strings:
+        units = shingle.split(" ") if used == WORD else list(shingle)
+        key = _start_key(used, len(units), seed)
+        for piece in units:
+            key = _mix64_scalar(key ^ _unit_value_scalar(piece, used, seed))
+        keys.add(key)
     return np.array(sorted(keys), dtype=np.uint64)
 
 
-def shingle_keys(text: str, *, unit: str = WORD, ngram: int = 5, seed: int = 0) -> np.ndarray:
-    """Sorted distinct XXH3-64 keys (``uint64``) of the shingles of ``text``.
+def _window_keys(values: np.ndarray, unit: str, ngram: int, seed: int) -> np.ndarray:
+    """Keys of every window of ``ngram`` consecutive unit values (one key of all if fewer)."""
+    count = values.size - ngram + 1
+    if count <= 0:
+        width, count = values.size, 1
+    else:
+        width = ngram
+    keys = np.full(count, _start_key(unit, width, seed), dtype=np.uint64)
+    for offset in range(width):
+        keys ^= values[offset : offset + count]
+        _mix64(keys)
+    return keys
 
-    The view is encoded to UTF-8 once; shingle boundaries are found with NumPy
-    (spaces for words, UTF-8 lead bytes for code points) and each shingle's
-    bytes are hashed in place, which gives the same keys as hashing the strings
-    of :func:`shingle_strings` one by one.
+
+def shingle_key_stream(
+    text: str, *, unit: str = WORD, ngram: int = 5, seed: int = 0
+) -> tuple[np.ndarray, str]:
+    """Every shingle's key in order of occurrence, repeats included, and the unit used.
+
+    An empty view gives an empty array. ``np.unique`` of the keys is :func:`shingle_keys`.
+    """
+    _check_ngram(ngram)
+    if unit not in UNITS:
+        raise ValueError(f"unit = {unit!r}: must be one of {', '.join(UNITS)}")
+    words = view_words(text)
+    if not words:
+        return np.empty(0, dtype=np.uint64), WORD if unit == AUTO else unit
+    used = unit
+    view = ""
+    if unit != WORD and not (unit == AUTO and text.isascii()):  # ASCII is never mostly unspaced
+        view = b" ".join(words).decode("utf-8")
+        used = resolve_unit(view, unit)
+    elif unit == AUTO:
+        used = WORD
+    if used == WORD:
+        digest = xxhash.xxh3_64_intdigest
+        values = np.fromiter(map(digest, words, itertools.repeat(seed)), dtype=np.uint64, count=len(words))
+    else:
+        values = np.frombuffer(view.encode("utf-32-le"), dtype="<u4").astype(np.uint64)
+    return _window_keys(values, used, ngram, seed), used
+
+
+def shingle_keys(text: str, *, unit: str = WORD, ngram: int = 5, seed: int = 0) -> np.ndarray:
+    """Sorted distinct keys (``uint64``) of the shingles of ``text`` (see the module notes).
 
     >>> shingle_keys("", ngram=5).size
     0
-    >>> int(shingle_keys("Hi!", ngram=5)[0]) == keyed_hash64("hi", 0)
+    >>> fast = shingle_keys("A rose is a rose.", ngram=2)
+    >>> bool(np.array_equal(fast, shingle_keys_scalar("a rose is a rose", ngram=2)))
     True
     """
-    _check_ngram(ngram)
-    view = normalize_view(text)
-    if not view:
-        return np.empty(0, dtype=np.uint64)
-    data = view.encode("utf-8")
-    raw = np.frombuffer(data, dtype=np.uint8)
-    if resolve_unit(view, unit) == WORD:
-        spaces = np.flatnonzero(raw == 0x20)
-        unit_starts = np.concatenate(([0], spaces + 1))
-        unit_ends = np.concatenate((spaces, [len(data)]))
-    else:
-        # A code point starts at every byte that is not a continuation byte (10xxxxxx).
-        unit_starts = np.flatnonzero((raw & 0xC0) != 0x80)
-        unit_ends = np.concatenate((unit_starts[1:], [len(data)]))
-    count = unit_starts.size - ngram + 1
-    if count <= 0:
-        return np.array([keyed_hash64(view, seed)], dtype=np.uint64)
-    starts = unit_starts[:count].tolist()
-    ends = unit_ends[ngram - 1 :].tolist()
-    buffer = memoryview(data)
-    digest = xxhash.xxh3_64_intdigest
-    keys = np.fromiter(
-        (digest(buffer[start:end], seed) for start, end in zip(starts, ends, strict=True)),
-        dtype=np.uint64,
-        count=count,
-    )
-    return np.unique(keys)
+    return np.unique(shingle_key_stream(text, unit=unit, ngram=ngram, seed=seed)[0])
 
 
 def exact_jaccard(first: np.ndarray, second: np.ndarray) -> float:

@@ -204,8 +204,9 @@ def test_clusters_representatives_and_empty_documents(verify: str) -> None:
 
 def test_empty_documents_are_never_near_copies_of_each_other() -> None:
     config = NearConfig()
-    signatures, _ = signature_batch(make_batch(["...", "?!", "", "  -- "]), config)
-    result = find_clusters(signatures, config)
+    texts = ["...", "?!", "", "  -- "]
+    signatures, _ = signature_batch(make_batch(texts), config)
+    result = find_clusters(signatures, config, shingles_of=lambda i: document_shingles(texts[i], config))
     assert result.cluster.tolist() == [0, 1, 2, 3]
     assert result.report["candidates"] == 0
 
@@ -232,7 +233,7 @@ def test_clusters_are_connected_components_with_the_smallest_member_first() -> N
     signatures = base[family_of].copy()
     noise = rng.random(signatures.shape) < 0.05
     signatures[noise] = rng.integers(0, 2**31, size=int(noise.sum())).astype(np.uint32)
-    config = NearConfig(permutations=64, threshold=0.8)
+    config = NearConfig(permutations=64, threshold=0.8, verify="signature")  # planted signatures, no texts
     result = find_clusters(signatures, config)
     assert result.cluster.tolist() == components(300, result.pairs)
     for index in range(300):
@@ -242,11 +243,13 @@ def test_clusters_are_connected_components_with_the_smallest_member_first() -> N
 
 def test_memmap_store_gives_the_same_result(tmp_path: Path) -> None:
     config = NearConfig(permutations=64)
-    signatures, _ = signature_batch(make_batch(small_corpus()), config)
+    texts = small_corpus()
+    signatures, _ = signature_batch(make_batch(texts), config)
     path = tmp_path / "signatures.npy"
     np.save(path, signatures)
-    from_disk = find_clusters(np.load(path, mmap_mode="r"), config)
-    in_memory = find_clusters(signatures, config)
+    keys = [document_shingles(t or "", config) for t in texts]
+    from_disk = find_clusters(np.load(path, mmap_mode="r"), config, shingles_of=keys.__getitem__)
+    in_memory = find_clusters(signatures, config, shingles_of=keys.__getitem__)
     assert np.array_equal(from_disk.cluster, in_memory.cluster)
     assert np.array_equal(from_disk.similarity, in_memory.similarity, equal_nan=True)
     assert from_disk.report == in_memory.report
@@ -264,7 +267,9 @@ def test_mark_near_copies_removes_only_kept_copies() -> None:
     texts = small_corpus()
     batch = make_batch(texts)
     signatures, _ = signature_batch(batch, config)
-    result = find_clusters(signatures, config)
+    result = find_clusters(
+        signatures, config, shingles_of=lambda i: document_shingles(texts[i] or "", config)
+    )
     first_half, second_half = batch.slice(0, 4), batch.slice(4)
     marked_a, report_a = mark_near_copies(first_half, 0, result, config)
     marked_b, report_b = mark_near_copies(second_half, 4, result, config)

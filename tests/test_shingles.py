@@ -9,9 +9,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import xxhash
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from corpusprep import shingles
 from corpusprep.hashing import keyed_hash64
 from corpusprep.shingles import (
     CHAR,
@@ -21,13 +23,33 @@ from corpusprep.shingles import (
     is_mostly_unspaced,
     normalize_view,
     resolve_unit,
+    shingle_key_stream,
     shingle_keys,
     shingle_keys_scalar,
     shingle_strings,
+    view_words,
 )
 
 LICENCES = Path(__file__).resolve().parent.parent / "fixtures" / "licences"
 LICENCE_NAMES = ("GPL-2", "GPL-3", "LGPL-2.1", "LGPL-3", "Apache-2.0", "BSD")
+PYTHON_DOCS = Path("/usr/share/doc/python3.11-doc/html/_sources")
+MASK64 = (1 << 64) - 1
+
+
+def splitmix64_finaliser(value: int) -> int:
+    """SplitMix64's output function, written out here independently of the module."""
+    value = ((value ^ (value >> 30)) * 0xBF58476D1CE4E5B9) & MASK64
+    value = ((value ^ (value >> 27)) * 0x94D049BB133111EB) & MASK64
+    return value ^ (value >> 31)
+
+
+def key_by_hand(words: list[str], seed: int) -> int:
+    """The documented key of one word shingle, computed from the module docstring's formula."""
+    key = xxhash.xxh3_64_intdigest(f"shingle:word:{len(words)}".encode(), seed=seed)
+    for word in words:
+        key = splitmix64_finaliser(key ^ keyed_hash64(word, seed))
+    return key
+
 
 # Broder 1997, §2: A = "a rose is a rose is a rose", B = "a rose is a flower which is a rose".
 BRODER_A = "a rose is a rose is a rose"
@@ -86,7 +108,7 @@ def test_no_punctuation_beyond_plane_one() -> None:
 
 def test_short_document_is_one_shingle_of_its_whole_view() -> None:
     assert shingle_strings("A Rose, is.", ngram=5) == ["a rose is"]
-    assert shingle_keys("A Rose, is.", ngram=5).tolist() == [keyed_hash64("a rose is", 0)]
+    assert shingle_keys("A Rose, is.", ngram=5).tolist() == [key_by_hand(["a", "rose", "is"], 0)]
     assert shingle_strings("ab", unit=CHAR, ngram=5) == ["ab"]
 
 
@@ -180,3 +202,98 @@ def test_inputs_are_not_mutated() -> None:
 def test_bad_ngram_is_refused() -> None:
     with pytest.raises(ValueError, match="ngram = 0"):
         shingle_keys("a b c", ngram=0)
+
+
+def test_splitmix64_finaliser_reproduces_the_published_sequence() -> None:
+    # SplitMix64 (Steele, Lea & Flood 2014) seeded with 1234567: the state advances by
+    # 0x9E3779B97F4A7C15 and each output is the finaliser of the state. The first five outputs,
+    # as listed by the Rosetta Code task "Pseudo-random numbers/Splitmix64" (cited from memory).
+    published = [
+        6457827717110365317,
+        3203168211198807973,
+        9817491932198370423,
+        4593380528125082431,
+        16408922859458223821,
+    ]
+    state, outputs = 1234567, []
+    for _ in published:
+        state = (state + 0x9E3779B97F4A7C15) & MASK64
+        outputs.append(splitmix64_finaliser(state))
+    assert outputs == published
+    # The module's vectorised finaliser is the same function (the keys below depend on it).
+    values = np.array([(1234567 + (i + 1) * 0x9E3779B97F4A7C15) & MASK64 for i in range(5)], np.uint64)
+    shingles._mix64(values)
+    assert values.tolist() == published
+
+
+def test_word_keys_follow_the_documented_formula() -> None:
+    # Broder 1997 §2 sentence A, 4-shingles: three distinct shingles, each key by the formula.
+    words = BRODER_A.split(" ")
+    expected = sorted({key_by_hand(words[i : i + 4], 9) for i in range(len(words) - 3)})
+    assert shingle_keys(BRODER_A, ngram=4, seed=9).tolist() == expected
+
+
+def test_char_keys_follow_the_documented_formula() -> None:
+    text = "東京です"
+    expected = set()
+    for start in range(len(text) - 1):
+        key = xxhash.xxh3_64_intdigest(b"shingle:char:2", seed=4)
+        for point in text[start : start + 2]:
+            key = splitmix64_finaliser(key ^ ord(point))
+        expected.add(key)
+    assert shingle_keys(text, unit=CHAR, ngram=2, seed=4).tolist() == sorted(expected)
+
+
+def test_key_stream_keeps_order_and_repeats() -> None:
+    stream, used = shingle_key_stream(BRODER_A, ngram=2)
+    assert used == WORD
+    strings = shingle_strings(BRODER_A, ngram=2)
+    assert stream.size == len(strings) == 7
+    # equal strings give equal keys at the same places, different strings different keys
+    for (i, a), (j, b) in itertools.combinations(enumerate(strings), 2):
+        assert (stream[i] == stream[j]) == (a == b)
+    assert np.array_equal(np.unique(stream), shingle_keys(BRODER_A, ngram=2))
+    assert shingle_key_stream("東京は日本の首都です", unit="auto")[1] == CHAR
+    assert shingle_key_stream("...", unit="auto")[0].size == 0
+
+
+@pytest.mark.parametrize("name", LICENCE_NAMES)
+def test_fast_view_equals_the_readable_view_on_licences(name: str) -> None:
+    text = licence(name)
+    assert b" ".join(view_words(text)).decode() == normalize_view(text)
+    assert b" ".join(view_words(text + "é—")).decode() == normalize_view(text + "é—")
+
+
+def test_fast_view_equals_the_readable_view_for_every_code_point() -> None:
+    # Each code point (surrogates excluded) between two letters, upper and lower case alike.
+    points = [chr(c) for c in range(sys.maxunicode + 1) if not 0xD800 <= c <= 0xDFFF]
+    for begin in range(0, len(points), 4096):
+        text = "".join(f"A{c}b " for c in points[begin : begin + 4096])
+        assert b" ".join(view_words(text)).decode() == normalize_view(text), begin
+
+
+@settings(max_examples=200, deadline=None)
+@given(text=st.text(max_size=60))
+def test_fast_view_equals_the_readable_view_property(text: str) -> None:
+    assert b" ".join(view_words(text)).decode() == normalize_view(text)
+
+
+def non_ascii_doc_pages(count: int) -> list[str]:
+    pages = sorted(PYTHON_DOCS.rglob("*.txt"))
+    texts = (p.read_text(encoding="utf-8") for p in pages)
+    return list(itertools.islice((t for t in texts if not t.isascii()), count))
+
+
+@pytest.mark.skipif(
+    not PYTHON_DOCS.is_dir(), reason="Python docs sources (Debian package python3.11-doc) absent"
+)
+def test_fast_keys_equal_scalar_keys_on_non_ascii_python_docs() -> None:
+    # Real text with non-ASCII characters: Python 3.11 documentation sources (Debian python3.11-doc).
+    pages = non_ascii_doc_pages(6)
+    assert len(pages) == 6
+    for text in pages:
+        for unit, ngram in ((WORD, 5), (CHAR, 3), ("auto", 5)):
+            assert np.array_equal(
+                shingle_keys(text, unit=unit, ngram=ngram, seed=3),
+                shingle_keys_scalar(text, unit=unit, ngram=ngram, seed=3),
+            )
