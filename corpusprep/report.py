@@ -341,7 +341,7 @@ def _figure(svg: str, caption: str) -> str:
 
 
 def _section(section_id: str, title: str, body: str) -> str:
-    return f'<section id="{section_id}"><h2>{_e(title)}</h2>\n{body}\n</section>'
+    return f'<section id="part-{section_id}"><h2>{_e(title)}</h2>\n{body}\n</section>'
 
 
 def _fates(data: _Data) -> str:
@@ -741,7 +741,7 @@ def _page(data: _Data, config: ReportConfig) -> str:
         ("inputs", "Input files", _inputs(data, config)),
         ("shards", "Shards and tokenizer", _shards(data)),
     ]
-    contents = "".join(f'<li><a href="#{sid}">{_e(title)}</a></li>' for sid, title, _body in sections)
+    contents = "".join(f'<li><a href="#part-{sid}">{_e(title)}</a></li>' for sid, title, _body in sections)
     summary = (
         f"<p>{_m(ledger['read'], 'ledger.read')} input records read from "
         f"{_m(manifest['inputs']['count'], 'inputs.count')} files: {_m(ledger['kept'], 'ledger.kept')} kept, "

@@ -142,6 +142,18 @@ def _text_inches(labels: Sequence[str]) -> float:
     return round(0.2 + 0.065 * max((len(label) for label in labels), default=4), 3)
 
 
+def compact_number(value: float) -> str:
+    """A short label for a positive axis value.
+
+    >>> [compact_number(v) for v in (1, 10, 1500, 100000, 2e6)]
+    ['1', '10', '1.5k', '100k', '2M']
+    """
+    for limit, suffix in ((1e9, "G"), (1e6, "M"), (1e3, "k")):
+        if value >= limit:
+            return f"{value / limit:g}{suffix}"
+    return f"{value:g}"
+
+
 def _log_axis(axes: Axes, which: str) -> None:
     """Put the ``which`` ("x" or "y") axis of ``axes`` on a log scale with plain-number labels.
 
@@ -156,7 +168,7 @@ def _log_axis(axes: Axes, which: str) -> None:
         axes.set_yscale("log")
     axis = axes.xaxis if which == "x" else axes.yaxis
     axis.set_major_locator(LogLocator(base=10, numticks=8))
-    axis.set_major_formatter(FuncFormatter(lambda value, _position: f"{value:,.10g}"))
+    axis.set_major_formatter(FuncFormatter(lambda value, _position: compact_number(value)))
     axis.set_minor_formatter(NullFormatter())
 
 
@@ -186,12 +198,12 @@ def fates_figure(fates: Sequence[tuple[str, str, int]]) -> str:
     return _figure_svg("fig-fates", 7.0, 1.1 + 0.3 * max(len(fates), 1), draw, left=_text_inches(labels))
 
 
-def _bins(values: np.ndarray, count: int = 24) -> tuple[np.ndarray, bool]:
+def _bins(values: np.ndarray, count: int = 20) -> tuple[np.ndarray, bool]:
     """Shared bin edges for positive integers: logarithmic when they span more than 100x.
 
     >>> edges, logarithmic = _bins(np.array([13, 285]))
     >>> len(edges), logarithmic
-    (25, False)
+    (21, False)
     """
     low, high = max(int(values.min()), 1), max(int(values.max()), 1)
     if high / low > 100:
