@@ -31,7 +31,7 @@ Everything else in the file is what HF trained.
 A user's file (kind ``"file"``)
 -------------------------------
 ``tokenizer.file`` names an HF ``tokenizers`` JSON file; a relative path is
-resolved against the current directory. It is used as it is, with these rules:
+resolved against the definition file's folder. It is used as it is, with these rules:
 
 - ``tokenizer.end_of_document`` (and ``tokenizer.begin_of_document`` when set)
   must be a *special* added token of the file, or a vocabulary entry that text
@@ -227,18 +227,24 @@ def train_bpe(config: TokenizerConfig, train_texts: TextSource) -> JsonTokenizer
     )
 
 
-def load_tokenizer_file(config: TokenizerConfig) -> JsonTokenizer:
-    """The user's tokenizer file ``config.file`` under the rules of the module docstring."""
+def load_tokenizer_file(config: TokenizerConfig, *, base: Path | None = None) -> JsonTokenizer:
+    """The user's tokenizer file ``config.file`` under the rules of the module docstring.
+
+    A relative ``config.file`` is read from ``base`` (the definition's folder) when given; the
+    manifest records the path as written in the definition, plus the file's size and hash.
+    """
     from tokenizers import AddedToken
     from tokenizers import Tokenizer as HFTokenizer
 
     shown = f"tokenizer.file = {config.file!r}"
     path = Path(config.file)
+    if base is not None and not path.is_absolute():
+        path = base / path
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise DefinitionError(
-            f"{shown}: no such file (a relative path is resolved against the current directory, {Path.cwd()})"
+            f"{shown}: no such file ({path})"
         ) from None
     except (OSError, UnicodeDecodeError) as error:
         raise DefinitionError(f"{shown}: cannot read it: {error}") from None

@@ -62,6 +62,7 @@ class Definition:
     """A validated pipeline definition. Paths are absolute."""
 
     source: str
+    base: Path | None = None  # the definition file's folder: relative paths inside tables resolve here
     input: Path | None
     output: Path | None
     read: ReadConfig
@@ -209,7 +210,13 @@ def parse_definition(text: str, *, source: str = "<definition>", base: Path | No
         path = Path(value)
         folders[key] = (base / path if base is not None and not path.is_absolute() else path).resolve()
     stages = {name: _build_stage(name, cls, data.get(name, {}), where) for name, cls in STAGE_TABLES.items()}
-    return Definition(source=source, input=folders["input"], output=folders["output"], **stages)
+    return Definition(
+        source=source,
+        base=base.resolve() if base is not None else None,
+        input=folders["input"],
+        output=folders["output"],
+        **stages,
+    )
 
 
 def load_definition(path: Path) -> Definition:

@@ -414,7 +414,7 @@ class _Run:
 
     def tokenize_step(self) -> None:
         definition = self.definition
-        self.tokenizer = build_tokenizer(definition.tokenizer, self._train_texts)
+        self.tokenizer = build_tokenizer(definition.tokenizer, self._train_texts, base=definition.base)
         self.dtype = smallest_dtype(self.tokenizer.vocab_size)
         self.token_count = np.full(self.rows, -1, dtype=np.int64)
         offsets: dict[str, list[int]] = {name: [] for name in SPLITS}

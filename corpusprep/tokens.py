@@ -162,7 +162,7 @@ class TokenizerConfig:
     file: str = setting(
         "",
         "Path of an HF tokenizers JSON file (kind 'file' only). A relative path is resolved against "
-        "the current directory.",
+        "the definition file's folder.",
     )
 
     def __post_init__(self) -> None:
@@ -446,13 +446,16 @@ class ByteTokenizer:
         }
 
 
-def build_tokenizer(config: TokenizerConfig, train_texts: TextSource | None = None) -> Tokenizer:
+def build_tokenizer(
+    config: TokenizerConfig, train_texts: TextSource | None = None, *, base: Path | None = None
+) -> Tokenizer:
     """The tokenizer of ``config.kind``; trained kinds read ``train_texts()`` once, as a stream.
 
     ``train_texts`` must return a fresh iterator over the cleaned texts of the
     train split's kept documents, in a deterministic order (the pipeline uses
     ledger order); only the first ``config.sample_documents`` are read when
-    that is set. Untrained kinds ignore it.
+    that is set. Untrained kinds ignore it. A relative ``tokenizer.file`` is read from ``base``
+    (the definition's folder) when given, else from the current directory.
 
     >>> build_tokenizer(TokenizerConfig(kind="characters", min_count=1), lambda: iter(["abba"])).vocab_size
     5
@@ -462,7 +465,7 @@ def build_tokenizer(config: TokenizerConfig, train_texts: TextSource | None = No
     if config.kind == "file":
         from corpusprep.bpe import load_tokenizer_file
 
-        return load_tokenizer_file(config)
+        return load_tokenizer_file(config, base=base)
     if train_texts is None:
         raise IntegrityError(
             f"tokenizer.kind = {config.kind!r} is trained: build_tokenizer needs train_texts"

@@ -8,6 +8,7 @@ word planted only in documents that the split put outside train.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import random
 import sys
@@ -61,11 +62,13 @@ def runs(archive: tuple[Path, dict[str, str]], tmp_path_factory: pytest.TempPath
     """Output folder of every definition, run from a scratch folder laid out like the repository.
 
     Outputs go to ``<scratch>/build/<name>``, as the definitions' ``../build/<name>`` would from
-    ``pipelines/``; a 'file' definition names the tokenizer of another run relative to the current
-    directory, so it runs last with the scratch folder as the current directory.
+    ``pipelines/``; a 'file' definition names the tokenizer of another run relative to its own
+    folder (``../build/<name>/tokenizer.json``), so it runs last with its folder moved to
+    ``<scratch>/pipelines``.
     """
     folder, _ = archive
     scratch = tmp_path_factory.mktemp("repo")
+    (scratch / "pipelines").mkdir()
     definitions = {path.stem: load_definition(path) for path in DEFINITIONS}
     order = sorted(definitions, key=lambda name: (definitions[name].tokenizer.kind == "file", name))
     outputs: dict[str, Path] = {}
@@ -75,6 +78,7 @@ def runs(archive: tuple[Path, dict[str, str]], tmp_path_factory: pytest.TempPath
             definition = definitions[name]
             assert definition.output is not None
             output = scratch / "build" / definition.output.name
+            definition = dataclasses.replace(definition, base=scratch / "pipelines")
             run_pipeline(definition.with_folders(input=folder, output=output), workers=1)
             outputs[name] = output
     return outputs
