@@ -4,7 +4,7 @@ VENV   ?= .venv
 BIN    := $(VENV)/bin
 STAMP  := $(VENV)/.installed
 
-.PHONY: demo test lint bench clean
+.PHONY: demo test lint bench stress clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -15,6 +15,9 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(BIN)/python fixtures/make_ferry_archive.py fixtures/ferry
 	$(BIN)/corpusprep run pipelines/demo.toml --force
+	$(BIN)/corpusprep audit build/demo --examples 3
+	$(BIN)/corpusprep inspect build/demo --show 1
+	$(BIN)/corpusprep report build/demo
 
 test: $(STAMP)
 	$(BIN)/python -m pytest
@@ -26,6 +29,11 @@ lint: $(STAMP)
 
 bench: $(STAMP)
 	$(BIN)/python bench/run.py
+
+# A folder of hostile inputs (invalid UTF-8, a 100 MB line, a gzip bomb, link loops, ...) and a run on it.
+stress: $(STAMP)
+	$(BIN)/python fixtures/make_hostile_inputs.py build/hostile-input
+	$(BIN)/corpusprep run pipelines/stress.toml --force
 
 clean:
 	rm -rf build .pytest_cache .mypy_cache .ruff_cache
