@@ -356,3 +356,10 @@ def test_recall_and_precision_on_edited_python_docs() -> None:
     precision = len(truth & found) / len(found)
     assert recall >= 0.95, (recall, len(truth))
     assert precision >= 0.98, (precision, len(found))
+
+
+def test_default_verification_is_exact() -> None:
+    # Candidates are confirmed on exact Jaccard unless asked otherwise; the barrier then needs shingles_of.
+    assert NearConfig().verify == "exact"
+    with pytest.raises(ValueError, match="shingles_of"):
+        find_clusters(np.zeros((2, 256), np.uint32), NearConfig())
