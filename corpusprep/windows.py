@@ -128,7 +128,8 @@ class SplitWindows:
     def _map(self, index: int) -> np.ndarray:
         array = self._maps[index]
         if array is None:
-            array = np.load(self._shards[index].path, mmap_mode="r", allow_pickle=False)
+            # A plain ndarray over the memory map: indexing it skips np.memmap's per-result bookkeeping.
+            array = np.asarray(np.load(self._shards[index].path, mmap_mode="r", allow_pickle=False))
             self._maps[index] = array
         return array
 
@@ -145,19 +146,30 @@ class SplitWindows:
         return window[:-1], window[1:]
 
     def take(self, indices: np.ndarray) -> np.ndarray:
-        """Stored windows at ``indices`` as one ``(len(indices), length + 1)`` array, in that order."""
+        """Stored windows at ``indices`` as one new ``(len(indices), length + 1)`` array, in that order.
+
+        Rows are gathered straight from each shard's memory map with one ``np.take``
+        per shard touched; when all indices fall in one shard (always, for a
+        one-shard split) that gather writes the result directly.
+        """
         indices = np.asarray(indices, dtype=np.int64)
-        out = np.empty((len(indices), self.length + 1), dtype=self.dtype)
         if len(indices) == 0:
-            return out
+            return np.empty((0, self.length + 1), dtype=self.dtype)
         if indices.min() < 0 or indices.max() >= len(self):
             raise IndexError(f"window index out of range for {len(self)} windows of {self.split}")
+        if len(self._shards) == 1:
+            gathered: np.ndarray = np.take(self._map(0), indices, axis=0)
+            return gathered
         shard_of = np.searchsorted(self._starts, indices, side="right") - 1
-        for shard in np.unique(shard_of).tolist():
+        first, last = int(shard_of.min()), int(shard_of.max())
+        if first == last:
+            gathered = np.take(self._map(first), indices - self._starts[first], axis=0)
+            return gathered
+        out = np.empty((len(indices), self.length + 1), dtype=self.dtype)
+        for shard in range(first, last + 1):
             where = np.flatnonzero(shard_of == shard)
-            local = indices[where] - self._starts[shard]
-            order = np.argsort(local, kind="stable")  # read each shard front to back
-            out[where[order]] = self._map(shard)[local[order]]
+            if len(where):
+                out[where] = np.take(self._map(shard), indices[where] - self._starts[shard], axis=0)
         return out
 
     def steps_per_epoch(self, batch_size: int, *, world_size: int = 1, drop_last: bool = False) -> int:

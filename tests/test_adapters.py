@@ -56,7 +56,7 @@ def _pairs_direct(windows: SplitWindows) -> Counter[tuple[tuple[int, ...], tuple
 # ---------------------------------------------------------------- PyTorch
 
 
-@pytest.mark.parametrize("context", ["fork", "spawn"])
+@pytest.mark.parametrize("context", ["fork", pytest.param("spawn", marks=pytest.mark.slow)])
 def test_a_torch_dataloader_with_two_workers_yields_every_window(output: Path, context: str) -> None:
     torch = pytest.importorskip("torch", reason=TORCH_MISSING)
     from torch.utils.data import DataLoader
