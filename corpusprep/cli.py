@@ -192,6 +192,12 @@ def inspect(
 
         if not (output / "manifest.json").is_file():
             _fail(f"{output}: no manifest.json; not a finished corpusprep output", EXIT_USAGE)
+        from corpusprep.manifest import read_manifest
+
+        splits = read_manifest(output).get("splits", {})
+        if show and split not in splits:
+            names = ", ".join(splits) or "none"
+            _fail(f"--split {split}: no such split in {output}; it has {names}", EXIT_USAGE)
         print_overview(output, show=show, split=split)
 
     _guard(debug, action)
