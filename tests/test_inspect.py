@@ -18,7 +18,7 @@ import pytest
 from tokenizers import Tokenizer, models
 from typer.testing import CliRunner
 
-from corpusprep.cli import EXIT_OK, app
+from corpusprep.cli import EXIT_OK, EXIT_USAGE, app
 from corpusprep.definition import load_definition
 from corpusprep.pipeline import run_pipeline
 
@@ -122,8 +122,8 @@ def test_without_show_no_window_is_decoded(demo_output: Path) -> None:
 
 def test_an_unknown_split_is_named_before_anything_is_printed(demo_output: Path) -> None:
     result = runner.invoke(app, ["inspect", str(demo_output), "--show", "1", "--split", "dev"])
-    assert result.exit_code != EXIT_OK
-    assert "no split 'dev'" in result.output and "Shards" not in result.output
+    assert result.exit_code == EXIT_USAGE
+    assert "--split dev: no such split" in result.stderr and "Shards" not in result.stdout
 
 
 def test_decoded_text_is_printed_literally(tmp_path: Path) -> None:
