@@ -160,22 +160,55 @@ def _log_axis(axes: Axes, which: str) -> None:
     matplotlib's default log labels are mathtext (``10^{2}``), whose parser
     dominated the drawing time; plain numbers are as clear and cheap.
     """
-    from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+    from matplotlib.ticker import FuncFormatter, LogLocator, NullLocator
 
     if which == "x":
         axes.set_xscale("log")
     else:
         axes.set_yscale("log")
     axis = axes.xaxis if which == "x" else axes.yaxis
-    axis.set_major_locator(LogLocator(base=10, numticks=8))
+    axis.set_major_locator(LogLocator(base=10, numticks=6))
     axis.set_major_formatter(FuncFormatter(lambda value, _position: compact_number(value)))
-    axis.set_minor_formatter(NullFormatter())
+    axis.set_minor_locator(NullLocator())  # every tick is an object costing milliseconds to make
 
 
-def _label_bars(axes: Axes, bars: Any, values: Sequence[int], gid_prefix: str, keys: Sequence[str]) -> None:
-    labels = axes.bar_label(bars, labels=[f"{value:,}" for value in values], padding=2, fontsize=8)
-    for label, key in zip(labels, keys, strict=True):
-        label.set_gid(f"{gid_prefix}{key}")
+def _few_ticks(axes: Axes, logarithmic_x: bool) -> None:
+    """At most about four whole-number ticks on y (counts), and on x unless it is logarithmic."""
+    axes.locator_params(axis="y", nbins=4, integer=True)
+    if not logarithmic_x:
+        axes.locator_params(axis="x", nbins=4)
+
+
+def _label_values(
+    axes: Axes,
+    positions: Sequence[float],
+    values: Sequence[int],
+    *,
+    horizontal: bool = False,
+    gids: Sequence[str] | None = None,
+    size: float = 8,
+    rotate: bool = False,
+) -> None:
+    """Print each non-zero value at the end of its bar (plain text artists, cheaper than bar_label)."""
+    from matplotlib.transforms import offset_copy
+
+    shift = offset_copy(
+        axes.transData,
+        fig=axes.get_figure(root=True),
+        x=3 if horizontal else 0,
+        y=0 if horizontal else 2,
+        units="points",
+    )
+    for index, (position, value) in enumerate(zip(positions, values, strict=True)):
+        if not value:
+            continue
+        x, y = (value, position) if horizontal else (position, value)
+        label = axes.text(
+            x, y, f"{value:,}", transform=shift, fontsize=size, rotation=90 if rotate else 0,
+            ha="left" if horizontal else "center", va="center" if horizontal else "bottom",
+        )  # fmt: skip
+        if gids is not None:
+            label.set_gid(gids[index])
 
 
 def fates_figure(fates: Sequence[tuple[str, str, int]]) -> str:
@@ -187,8 +220,9 @@ def fates_figure(fates: Sequence[tuple[str, str, int]]) -> str:
     def draw(figure: Figure) -> None:
         axes = figure.add_subplot()
         positions = np.arange(len(fates))
-        bars = axes.barh(positions, counts, color=colours, edgecolor="black", linewidth=0.6)
-        _label_bars(axes, bars, counts, "value-", [label.replace(" ", "_") for label in labels])
+        axes.barh(positions, counts, color=colours, edgecolor="black", linewidth=0.6)
+        keys = [f"value-{label.replace(' ', '_')}" for label in labels]
+        _label_values(axes, positions.tolist(), counts, horizontal=True, gids=keys)
         axes.set_yticks(positions, labels)
         axes.invert_yaxis()
         axes.set_xlabel("input records (ledger rows)")
@@ -209,6 +243,17 @@ def _bins(values: np.ndarray, count: int = 20) -> tuple[np.ndarray, bool]:
     if high / low > 100:
         return np.unique(np.round(np.geomspace(low, high + 1, count + 1))), True
     return np.linspace(low, high + 1, min(count, high + 1 - low) + 1), False
+
+
+def _centres(edges: np.ndarray, logarithmic: bool) -> list[float]:
+    """Middle of each bin as drawn: geometric on a log axis, arithmetic otherwise.
+
+    >>> _centres(np.array([1.0, 3.0, 100.0]), False), _centres(np.array([1.0, 100.0]), True)
+    ([2.0, 51.5], [10.0])
+    """
+    if logarithmic:
+        return [round(float(value), 9) for value in np.sqrt(edges[:-1] * edges[1:])]
+    return [float(value) for value in (edges[:-1] + edges[1:]) / 2]
 
 
 def _histogram(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
@@ -238,14 +283,12 @@ def lengths_figure(tokens_by_split: Mapping[str, np.ndarray], file_bytes: np.nda
             for axes, name in zip(panels, splits, strict=False):
                 values = tokens_by_split[name]
                 heights = _histogram(values, edges)
-                bars = axes.bar(
+                axes.bar(
                     edges[:-1], heights, width=np.diff(edges), align="edge",
                     color=split_colour(name), edgecolor="black", linewidth=0.4,
                 )  # fmt: skip
-                shown = [int(h) if h else 0 for h in heights]
-                labels = axes.bar_label(bars, labels=[f"{h}" if h else "" for h in shown], fontsize=6)
-                for label in labels:
-                    label.set_rotation(90)
+                _label_values(axes, _centres(edges, logarithmic), heights.tolist(), size=6, rotate=True)
+                _few_ticks(axes, logarithmic)
                 if logarithmic:
                     _log_axis(axes, "x")
                 median = float(np.median(values))
@@ -258,13 +301,12 @@ def lengths_figure(tokens_by_split: Mapping[str, np.ndarray], file_bytes: np.nda
         if len(file_bytes):
             edges, logarithmic = _bins(file_bytes)
             heights = _histogram(file_bytes, edges)
-            bars = axes.bar(
+            axes.bar(
                 edges[:-1], heights, width=np.diff(edges), align="edge",
                 color=OKABE_ITO["reddish_purple"], edgecolor="black", linewidth=0.4,
             )  # fmt: skip
-            labels = axes.bar_label(bars, labels=[f"{h}" if h else "" for h in heights.tolist()], fontsize=6)
-            for label in labels:
-                label.set_rotation(90)
+            _label_values(axes, _centres(edges, logarithmic), heights.tolist(), size=6, rotate=True)
+            _few_ticks(axes, logarithmic)
             if logarithmic:
                 _log_axis(axes, "x")
             axes.set_ylim(0, max(int(heights.max()), 1) * 1.25)
@@ -282,8 +324,9 @@ def cluster_figure(cluster_sizes: np.ndarray, similarities: np.ndarray, threshol
     def draw(figure: Figure) -> None:
         left, right = figure.subplots(1, 2)
         positions = np.arange(len(sizes))
-        bars = left.bar(positions, clusters, color=OKABE_ITO["blue"], edgecolor="black", linewidth=0.6)
-        _label_bars(left, bars, clusters.tolist(), "clusters-of-size-", [str(s) for s in sizes.tolist()])
+        left.bar(positions, clusters, color=OKABE_ITO["blue"], edgecolor="black", linewidth=0.6)
+        gids = [f"clusters-of-size-{size}" for size in sizes.tolist()]
+        _label_values(left, positions.tolist(), clusters.tolist(), gids=gids)
         left.set_xticks(positions, [str(size) for size in sizes.tolist()])
         _log_axis(left, "y")
         left.set_ylim(0.5, max(int(clusters.max(initial=1)), 1) * 3)
@@ -294,11 +337,12 @@ def cluster_figure(cluster_sizes: np.ndarray, similarities: np.ndarray, threshol
             low = min(float(similarities.min()), threshold if threshold is not None else 1.0)
             edges = np.linspace(math.floor(low * 40) / 40, 1.0, max(2, round((1.0 - low) * 40) + 2))
             heights, _ = np.histogram(similarities, bins=edges)
-            bars = right.bar(
+            right.bar(
                 edges[:-1], heights, width=np.diff(edges), align="edge",
                 color=OKABE_ITO["orange"], edgecolor="black", linewidth=0.4,
             )  # fmt: skip
-            right.bar_label(bars, labels=[f"{h}" if h else "" for h in heights.tolist()], fontsize=7)
+            _label_values(right, _centres(edges, False), heights.tolist(), size=7)
+            _few_ticks(right, False)
             right.set_ylim(0, max(int(heights.max()), 1) * 1.2)
         if threshold is not None:
             right.axvline(
@@ -322,8 +366,9 @@ def splits_figure(rows: Sequence[tuple[str, int, int, int]]) -> str:
         for column, (axes, title) in enumerate(zip(panels, ("documents", "tokens", "windows"), strict=True)):
             values = [int(row[column + 1]) for row in rows]
             positions = np.arange(len(rows))
-            bars = axes.bar(positions, values, color=colours, edgecolor="black", linewidth=0.6)
-            _label_bars(axes, bars, values, f"{title}-", names)
+            axes.bar(positions, values, color=colours, edgecolor="black", linewidth=0.6)
+            _label_values(axes, positions.tolist(), values, gids=[f"{title}-{name}" for name in names])
+            axes.locator_params(axis="y", nbins=4, integer=True)
             axes.set_xticks(positions, names)
             axes.set_title(title)
             axes.set_ylim(0, max(values, default=1) * 1.18 + 1)
@@ -381,11 +426,12 @@ def audit_figure(kinds: Sequence[tuple[str, str, int]]) -> str:
         axes = figure.add_subplot()
         positions = np.arange(len(kinds))
         counts = [count for _kind, _severity, count in kinds]
-        bars = axes.barh(
+        axes.barh(
             positions, counts, color=[colours.get(severity, _OTHER) for _kind, severity, _count in kinds],
             edgecolor="black", linewidth=0.6,
         )  # fmt: skip
-        _label_bars(axes, bars, counts, "findings-", [kind for kind, _severity, _count in kinds])
+        gids = [f"findings-{kind}" for kind, _severity, _count in kinds]
+        _label_values(axes, positions.tolist(), counts, horizontal=True, gids=gids)
         axes.set_yticks(positions, [f"{kind} ({severity})" for kind, severity, _count in kinds])
         axes.invert_yaxis()
         axes.set_xlim(0, max(counts, default=1) * 1.15 + 1)
