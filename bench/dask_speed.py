@@ -1,0 +1,213 @@
+"""The local engine beside the Dask engine: same corpus, same definition, same cores.
+
+Run: ``.venv/bin/python bench/dask_speed.py [--corpus DIR] [--workers N] [--definition TOML]``.
+
+The corpus is the ``base/`` folder written by ``bench/make_corpus.py`` (Python documentation
+sources and Debian licence texts); build it first with
+``.venv/bin/python bench/make_corpus.py bench/corpora``. Each engine runs in a fresh Python
+process so peak memory figures do not mix:
+
+- local: ``run_pipeline(workers=N)``, a process pool of N workers;
+- dask: ``corpusprep.engine_dask.dask_engine(None, N)``, a LocalCluster of N worker processes
+  with one thread each on 127.0.0.1 (what ``corpusprep run --engine dask`` starts).
+
+Printed per engine: wall time of the run (and, for Dask, the cluster start-up apart), the
+time of each phase (the two mapped passes, the driver barriers between and after them), peak
+RSS of the driver and of each worker (``resource.getrusage``; for Dask read on every worker
+with ``Client.run``, and on the scheduler with ``Client.run_on_scheduler`` -- a LocalCluster's
+scheduler lives in the driver process, so its figure is the driver's). Then the time ratio
+Dask / local (target <= 1.5) and whether both outputs are byte-identical.
+
+Nothing here is a pass/fail test: it prints figures.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from collections.abc import Callable, Iterable, Iterator
+from pathlib import Path
+from typing import Any
+
+import xxhash
+
+HERE = Path(__file__).resolve().parent
+ROOT = HERE.parent
+sys.path.insert(0, str(ROOT))
+
+DEFAULT_CORPUS = HERE / "corpora" / "base"
+DEFAULT_DEFINITION = HERE / "bench.toml"
+TARGET_RATIO = 1.5
+
+
+def _peak_rss_mib() -> float:
+    """Peak resident set of this process in MiB (Linux reports ru_maxrss in KiB)."""
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+
+
+def _children_peak_rss_mib() -> float:
+    """Largest peak resident set among this process's finished children, in MiB."""
+    return resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+
+
+class _PhaseClock:
+    """Wraps a mapper and notes when each map starts and ends, to cut the run into phases."""
+
+    def __init__(self, mapper: Callable[[Callable[[Any], Any], Iterable[Any]], Iterator[Any]]) -> None:
+        self.inner = mapper
+        self.marks: list[tuple[str, float]] = []
+
+    def __call__(self, function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
+        self.marks.append(("map start", time.perf_counter()))
+        yield from self.inner(function, items)
+        self.marks.append(("map end", time.perf_counter()))
+
+    def phases(self, start: float, end: float) -> dict[str, float]:
+        times = [mark for _, mark in self.marks]
+        if len(times) != 4:
+            return {"whole run": end - start}
+        names = (
+            "setup before the first pass",
+            "first pass (read, clean, hashes, signatures; mapped)",
+            "barriers: exact, near, split, tokenizer training (driver)",
+            "encode (mapped)",
+            "pack, ledger, signatures, manifest (driver)",
+        )
+        edges = [start, *times, end]
+        return {name: edges[i + 1] - edges[i] for i, name in enumerate(names)}
+
+
+def _tree_digest(folder: Path) -> str:
+    digest = xxhash.xxh3_128()
+    for path in sorted(p for p in folder.rglob("*") if p.is_file()):
+        digest.update(str(path.relative_to(folder)).encode())
+        digest.update(xxhash.xxh3_128(path.read_bytes()).digest())
+    return digest.hexdigest()
+
+
+def _one(engine: str, corpus: Path, definition_path: Path, output: Path, workers: int) -> dict[str, Any]:
+    """One run in this process; returns its figures."""
+    from corpusprep.definition import load_definition
+    from corpusprep.pipeline import run_pipeline
+    from corpusprep.pool import local_mapper
+
+    definition = load_definition(definition_path).with_folders(input=corpus, output=output)
+    figures: dict[str, Any] = {"engine": engine, "workers": workers}
+    if engine == "local":
+        clock = _PhaseClock(local_mapper(workers))
+        start = time.perf_counter()
+        result = run_pipeline(definition, mapper=clock)
+        end = time.perf_counter()
+        figures["peak_rss_mib"] = {
+            "driver": _peak_rss_mib(),
+            "largest pool worker": _children_peak_rss_mib(),
+        }
+    else:
+        from distributed import default_client
+
+        from corpusprep.engine_dask import dask_engine
+
+        begin = time.perf_counter()
+        with dask_engine(None, workers) as mapper:
+            figures["cluster_start_s"] = time.perf_counter() - begin
+            client = default_client()
+            clock = _PhaseClock(mapper)
+            start = time.perf_counter()
+            result = run_pipeline(definition, mapper=clock)
+            end = time.perf_counter()
+            per_worker = client.run(_peak_rss_mib)
+            scheduler = client.run_on_scheduler(_peak_rss_mib)
+        figures["peak_rss_mib"] = {
+            "driver": _peak_rss_mib(),
+            "scheduler (in the driver process)": scheduler,
+            **{f"worker {address}": value for address, value in sorted(per_worker.items())},
+        }
+    figures["run_s"] = end - start
+    figures["phases_s"] = clock.phases(start, end)
+    figures["output_digest"] = _tree_digest(result.output)
+    figures["documents"] = result.manifest["ledger"]["rows"]
+    figures["tokens"] = sum(split["tokens"] for split in result.manifest["splits"].values())
+    return figures
+
+
+def _spawn(engine: str, args: argparse.Namespace, output: Path) -> dict[str, Any]:
+    command = [
+        sys.executable,
+        str(Path(__file__).resolve()),
+        "--one",
+        engine,
+        "--corpus",
+        str(args.corpus),
+        "--definition",
+        str(args.definition),
+        "--workers",
+        str(args.workers),
+        "--output",
+        str(output),
+    ]
+    done = subprocess.run(command, capture_output=True, text=True, check=False)
+    if done.returncode != 0:
+        raise SystemExit(f"{engine} run failed:\n{done.stderr[-4000:]}")
+    figures: dict[str, Any] = json.loads(done.stdout.strip().splitlines()[-1])
+    return figures
+
+
+def _show(figures: dict[str, Any]) -> None:
+    print(f"\n{figures['engine']} engine, {figures['workers']} workers: run {figures['run_s']:.2f} s", end="")
+    if "cluster_start_s" in figures:
+        print(f" (+ {figures['cluster_start_s']:.2f} s starting the cluster)", end="")
+    print()
+    for name, seconds in figures["phases_s"].items():
+        share = seconds / figures["run_s"] * 100 if figures["run_s"] else 0.0
+        print(f"  {seconds:8.2f} s {share:5.1f} %  {name}")
+    for name, mib in figures["peak_rss_mib"].items():
+        print(f"  peak RSS {mib:8.1f} MiB  {name}")
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--corpus", type=Path, default=DEFAULT_CORPUS, help="Raw folder to run on.")
+    parser.add_argument("--definition", type=Path, default=DEFAULT_DEFINITION, help="Pipeline definition.")
+    parser.add_argument("--workers", type=int, default=2, help="Worker processes for both engines.")
+    parser.add_argument("--one", choices=("local", "dask"), help=argparse.SUPPRESS)
+    parser.add_argument("--output", type=Path, help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.one:
+        print(json.dumps(_one(args.one, args.corpus, args.definition, args.output, args.workers)))
+        return 0
+    if not args.corpus.is_dir():
+        print(
+            f"{args.corpus}: no corpus; build it with `.venv/bin/python bench/make_corpus.py bench/corpora`",
+            file=sys.stderr,
+        )
+        return 2
+    files = [p for p in args.corpus.rglob("*") if p.is_file()]
+    size = sum(p.stat().st_size for p in files)
+    print(f"corpus {args.corpus}: {len(files)} files, {size / 2**20:.1f} MiB; definition {args.definition}")
+    print(f"cores available: {len(os.sched_getaffinity(0))}; workers per engine: {args.workers}")
+    with tempfile.TemporaryDirectory(prefix="dask-speed-") as folder:
+        local = _spawn("local", args, Path(folder) / "local")
+        shutil.rmtree(Path(folder) / "local")
+        dask = _spawn("dask", args, Path(folder) / "dask")
+    for figures in (local, dask):
+        _show(figures)
+    ratio = dask["run_s"] / local["run_s"]
+    with_start = (dask["run_s"] + dask["cluster_start_s"]) / local["run_s"]
+    print(
+        f"\nDask / local time: {ratio:.2f} (target <= {TARGET_RATIO}: "
+        f"{'met' if ratio <= TARGET_RATIO else 'NOT met'}); counting the cluster start: {with_start:.2f}"
+    )
+    same = local["output_digest"] == dask["output_digest"]
+    print(f"outputs byte-identical: {'yes' if same else 'NO'} ({local['documents']} ledger rows)")
+    return 0 if same else 1
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
