@@ -105,8 +105,9 @@ class ReportConfig:
 
     def __post_init__(self) -> None:
         for name in ("rejected_rows", "largest_clusters", "excerpt_characters", "input_rows", "chunk_rows"):
-            if getattr(self, name) < (1 if name == "chunk_rows" else 0):
-                raise ReportError(f"report setting {name} = {getattr(self, name)}: must not be negative")
+            least = 1 if name == "chunk_rows" else 0
+            if getattr(self, name) < least:
+                raise ReportError(f"report setting {name} = {getattr(self, name)}: must be at least {least}")
 
 
 def default_report_path(output: Path) -> Path:

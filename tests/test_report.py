@@ -298,6 +298,42 @@ def test_the_number_check_catches_an_altered_value(demo: Demo) -> None:
     assert wrong == ["splits.train.tokens"]
 
 
+VARIANT = """
+[read]
+id_field = "id"
+group_field = "thread"
+fallback_encoding = "cp1252"
+max_rejected_fraction = 0.05
+[near]
+enabled = false
+[tokenizer]
+kind = "bytes"
+[pack]
+length = 64
+tail = "drop"
+windows_per_shard = 100
+"""
+
+
+def test_numbers_hold_without_near_step_with_bytes_and_a_dropped_tail(demo: Demo, tmp_path: Path) -> None:
+    """Source: as above (json, pyarrow, numpy) for another definition: no clusters, bytes, tail dropped."""
+    definition = tmp_path / "variant.toml"
+    definition.write_text(VARIANT, encoding="utf-8")
+    output = tmp_path / "variant"
+    run_pipeline(load_definition(definition).with_folders(input=demo.archive, output=output))
+    text = build_report(output)
+    page = parse(text)
+    references = References(output)
+    assert [item.key for item in page.marked if not shown_equals(item, references.value(item))] == []
+    assert "The near-duplicate step was off" in text and "fig-clusters" not in text
+    assert page.tags["svg"] == len(FIGURES) - 1
+    dropped = sum(split["dropped_tokens"] for split in references.manifest["splits"].values())
+    assert dropped > 0
+    shard_tokens = sum(references.shard_value(f"text-tokens:{s}") for s in ("train", "validation", "test"))
+    ledger_tokens = sum(references.ledger_value(f"split-tokens:{s}") for s in ("train", "validation", "test"))
+    assert ledger_tokens - dropped <= shard_tokens < ledger_tokens
+
+
 def test_shard_token_counts_agree_with_the_ledger(demo: Demo) -> None:
     """Source: numpy.load of the shards against the ledger's tokens column (pyarrow); tail pad drops none."""
     references = References(demo.output)
