@@ -15,8 +15,9 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(BIN)/python fixtures/make_ferry_archive.py fixtures/ferry
 	$(BIN)/corpusprep run pipelines/demo.toml --force
-	$(BIN)/corpusprep audit build/demo --examples 3
 	$(BIN)/corpusprep inspect build/demo --show 1
+	-$(BIN)/corpusprep audit build/demo --json --quiet > build/demo.audit.json
+	$(BIN)/corpusprep audit build/demo --skip-ngrams --examples 3 --quiet
 	$(BIN)/corpusprep report build/demo
 
 test: $(STAMP)
