@@ -8,7 +8,8 @@ Builds the benchmark corpus from Debian packages with ``bench/make_corpus.py``
 2. the whole pipeline on the base corpus (1x) and on base + copies (4x), each in a fresh
    process, wall time and peak RSS (workers = 1 for RSS, so one process holds all memory),
    and the wall time with two workers;
-3. the stage benchmarks that live beside this file (clean, near, tokens, audit), when present.
+3. the stage benchmarks beside this file, each in its own process: clean, near, tokens, reader,
+   audit, report and the Dask engine.
 
 Nothing here is a pass/fail test: it prints figures. Usage:
 ``python bench/run.py [--corpus DIR] [--skip-build] [--only NAME,...]``.
@@ -17,7 +18,6 @@ Nothing here is a pass/fail test: it prints figures. Usage:
 from __future__ import annotations
 
 import argparse
-import importlib.util
 import json
 import os
 import subprocess
@@ -32,18 +32,6 @@ import xxhash
 HERE = Path(__file__).resolve().parent
 ROOT = HERE.parent
 DEFAULT_CORPUS = HERE / "corpora"
-
-
-def _load(name: str) -> Any:
-    path = HERE / f"{name}.py"
-    if not path.exists():
-        return None
-    spec = importlib.util.spec_from_file_location(f"bench_{name}", path)
-    assert spec and spec.loader
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module
-    spec.loader.exec_module(module)
-    return module
 
 
 def _files(folder: Path) -> list[Path]:
@@ -78,8 +66,19 @@ def reference_figures(base: Path) -> dict[str, float]:
 def run_pipeline_process(input_folder: Path, output: Path, workers: int) -> dict[str, float]:
     """Run the CLI in a fresh process; wall seconds and that process's peak RSS in MB."""
     command = [
-        sys.executable, "-m", "corpusprep", "run", str(HERE / "bench.toml"),
-        "--input", str(input_folder), "--output", str(output), "--workers", str(workers), "--force", "--quiet",
+        sys.executable,
+        "-m",
+        "corpusprep",
+        "run",
+        str(HERE / "bench.toml"),
+        "--input",
+        str(input_folder),
+        "--output",
+        str(output),
+        "--workers",
+        str(workers),
+        "--force",
+        "--quiet",
     ]
     start = time.perf_counter()
     process = subprocess.Popen(command, cwd=ROOT)
@@ -110,7 +109,11 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--corpus", type=Path, default=DEFAULT_CORPUS)
     parser.add_argument("--skip-build", action="store_true", help="reuse an existing corpus folder")
-    parser.add_argument("--only", default="", help="comma-separated: reference,pipeline,clean,near,tokens,audit")
+    parser.add_argument(
+        "--only",
+        default="",
+        help="comma-separated subset of: reference,pipeline,clean,near,tokens,reader,audit,report,dask",
+    )
     args = parser.parse_args(argv)
     only = set(filter(None, args.only.split(",")))
 
@@ -119,7 +122,9 @@ def main(argv: list[str] | None = None) -> int:
 
     corpus: Path = args.corpus
     if not args.skip_build or not (corpus / "base").is_dir():
-        subprocess.run([sys.executable, str(HERE / "make_corpus.py"), str(corpus), "--scale", "3"], check=True)
+        subprocess.run(
+            [sys.executable, str(HERE / "make_corpus.py"), str(corpus), "--scale", "3"], check=True
+        )
     base = corpus / "base"
     runs = corpus.parent / "runs"
 
@@ -143,16 +148,23 @@ def main(argv: list[str] | None = None) -> int:
             },
         )
 
-    for name, module_name in (("clean", "clean_speed"), ("near", "near_speed"), ("tokens", "tokens_speed"),
-                              ("audit", "audit_speed")):
+    base_output = runs / "base-w1"
+    stage_benches = {
+        "clean": ["clean_speed.py", str(base)],
+        "near": ["near_speed.py"],
+        "tokens": ["tokens_speed.py"],
+        "reader": ["reader_speed.py"],
+        "audit": ["audit_speed.py", str(base_output if base_output.is_dir() else corpus)],
+        "report": ["report_speed.py", str(base)],
+        "dask": ["dask_speed.py", "--corpus", str(base)],
+    }
+    for name, command in stage_benches.items():
         if not wanted(name):
             continue
-        module = _load(module_name)
-        if module is None or not hasattr(module, "main"):
-            print(f"\n== {name}: bench/{module_name}.py has no main(); skipped")
-            continue
-        print(f"\n== {name} (bench/{module_name}.py)")
-        module.main([str(corpus)])
+        print(f"\n== {name} (bench/{command[0]})", flush=True)
+        result = subprocess.run([sys.executable, str(HERE / command[0]), *command[1:]], cwd=ROOT)
+        if result.returncode != 0:
+            print(f"   bench/{command[0]} exited {result.returncode} (a target missed or a step failed)")
     return 0
 
 
