@@ -243,9 +243,7 @@ def load_tokenizer_file(config: TokenizerConfig, *, base: Path | None = None) ->
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
-        raise DefinitionError(
-            f"{shown}: no such file ({path})"
-        ) from None
+        raise DefinitionError(f"{shown}: no such file ({path})") from None
     except (OSError, UnicodeDecodeError) as error:
         raise DefinitionError(f"{shown}: cannot read it: {error}") from None
     try:

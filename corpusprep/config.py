@@ -15,7 +15,7 @@ import dataclasses
 from collections.abc import Sequence
 from typing import Any
 
-__all__ = ["setting", "setting_docs", "SettingDoc"]
+__all__ = ["SettingDoc", "setting", "setting_docs"]
 
 
 def setting(

@@ -130,7 +130,9 @@ def _bounded_slices(batch: pa.RecordBatch, limit: int) -> Iterator[pa.RecordBatc
     A slice always holds at least one row. The cut depends only on the batch, so
     the work is spread over workers the same way whatever their number.
     """
-    lengths = pc.fill_null(pc.binary_length(batch.column("text")), 0).to_numpy(zero_copy_only=False)
+    text: Any = batch.column("text")
+    measured: Any = pc.binary_length(text)
+    lengths = np.asarray(pc.fill_null(measured, 0))
     start, total = 0, 0
     for row, length in enumerate(lengths.tolist()):
         if row > start and total + length > limit:
@@ -186,6 +188,7 @@ class _Run:
         self.work = self.partial / _WORK
         self.stages: dict[str, dict[str, Any]] = {}
         self.inputs: list[InputFile] = []
+        self.split_of: list[str | None] = []
         self.signature_dtype = np.dtype(np.uint32)
         self.permutations = 0
         self.checkpoints = Checkpoints(self.work)
@@ -385,7 +388,7 @@ class _Run:
             edges.append((np.array(group_left, dtype=np.int64), np.array(group_right, dtype=np.int64)))
         component_of = components(len(kept), edges)
         splits = assign_splits(member_keys, component_of, self.definition.split)
-        self.split_of: list[str | None] = [None] * self.rows
+        self.split_of = [None] * self.rows
         for row, split in zip(kept.tolist(), splits, strict=True):
             self.split_of[row] = split
         documents = Counter(splits)

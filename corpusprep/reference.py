@@ -60,10 +60,9 @@ def settings_reference() -> str:
         parts.append("| key | type | default | allowed | meaning |")
         parts.append("| --- | --- | --- | --- | --- |")
         for row in setting_docs(cls):
-            parts.append(
-                f"| `{row.key}` | {_TYPE_NAMES.get(row.type_name, row.type_name)} | `{_cell(_toml_value(row.default))}` | "
-                f"{_cell(row.allowed)} | {_cell(row.doc)} |"
-            )
+            kind = _TYPE_NAMES.get(row.type_name, row.type_name)
+            default = _cell(_toml_value(row.default))
+            parts.append(f"| `{row.key}` | {kind} | `{default}` | {_cell(row.allowed)} | {_cell(row.doc)} |")
         parts.append("")
     return "\n".join(parts)
 

@@ -41,7 +41,7 @@ def test_unknown_table_lists_tables() -> None:
 
 
 def test_wrong_type_names_key_and_value() -> None:
-    message = _error("[split]\nseed = \"seven\"\n")
+    message = _error('[split]\nseed = "seven"\n')
     assert message == 'demo.toml:2: split.seed = "seven": must be an integer'
 
 
