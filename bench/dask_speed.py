@@ -13,9 +13,12 @@ process so peak memory figures do not mix:
 
 Printed per engine: wall time of the run (and, for Dask, the cluster start-up apart), the
 time of each phase (the two mapped passes, the driver barriers between and after them), peak
-RSS of the driver and of each worker (``resource.getrusage``; for Dask read on every worker
-with ``Client.run``, and on the scheduler with ``Client.run_on_scheduler`` -- a LocalCluster's
-scheduler lives in the driver process, so its figure is the driver's). Then the time ratio
+memory of the driver and of the workers, both as ``resource.getrusage`` ``ru_maxrss`` and as
+``VmHWM`` (see :func:`_high_water_mib` for why they differ): for Dask read on every worker with
+``Client.run`` and on the scheduler with ``Client.run_on_scheduler`` (a LocalCluster's scheduler
+lives in the driver process, so its figure is the driver's); for the local pool returned by each
+batch beside its result. The driver's CPU time per phase (all its threads, the Dask scheduler's
+included) shows how much of a mapped phase is serial work in the driver. Then the time ratio
 Dask / local (target <= 1.5) and whether both outputs are byte-identical.
 
 Nothing here is a pass/fail test: it prints figures.
@@ -24,6 +27,7 @@ Nothing here is a pass/fail test: it prints figures.
 from __future__ import annotations
 
 import argparse
+import functools
 import json
 import os
 import resource
@@ -52,9 +56,28 @@ def _peak_rss_mib() -> float:
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
-def _children_peak_rss_mib() -> float:
-    """Largest peak resident set among this process's finished children, in MiB."""
-    return resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024
+def _high_water_mib() -> float:
+    """Peak resident set of this process image in MiB: ``VmHWM`` of ``/proc/self/status`` (Linux).
+
+    ``ru_maxrss`` of a spawned process also counts its parent's resident set at the fork
+    before ``exec`` (Linux keeps the larger of the two across ``exec``), so a worker spawned
+    by a large driver reports the driver's size; ``VmHWM`` belongs to the new image only.
+    """
+    with open("/proc/self/status", encoding="ascii") as status:
+        for line in status:
+            if line.startswith("VmHWM:"):
+                return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+def _worker_peaks() -> tuple[float, float]:
+    return _peak_rss_mib(), _high_water_mib()
+
+
+def _measured(function: Callable[[Any], Any], item: Any) -> tuple[Any, float, float]:
+    """``function(item)``, with the worker's peak memory after it (both measures)."""
+    result = function(item)
+    return result, _peak_rss_mib(), _high_water_mib()
 
 
 class _PhaseClock:
@@ -62,17 +85,27 @@ class _PhaseClock:
 
     def __init__(self, mapper: Callable[[Callable[[Any], Any], Iterable[Any]], Iterator[Any]]) -> None:
         self.inner = mapper
-        self.marks: list[tuple[str, float]] = []
+        self.marks: list[float] = []
+        self.cpu_marks: list[float] = []
+        self.worker_maxrss = 0.0
+        self.worker_hwm = 0.0
+
+    def mark(self) -> None:
+        self.marks.append(time.perf_counter())
+        self.cpu_marks.append(time.process_time())
 
     def __call__(self, function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
-        self.marks.append(("map start", time.perf_counter()))
-        yield from self.inner(function, items)
-        self.marks.append(("map end", time.perf_counter()))
+        self.mark()
+        for result, maxrss, hwm in self.inner(functools.partial(_measured, function), items):
+            self.worker_maxrss = max(self.worker_maxrss, maxrss)
+            self.worker_hwm = max(self.worker_hwm, hwm)
+            yield result
+        self.mark()
 
-    def phases(self, start: float, end: float) -> dict[str, float]:
-        times = [mark for _, mark in self.marks]
-        if len(times) != 4:
-            return {"whole run": end - start}
+    def phases(self) -> dict[str, tuple[float, float]]:
+        """Phase name -> (wall seconds, CPU seconds of the driver process, all its threads)."""
+        if len(self.marks) != 6:
+            return {"whole run": (self.marks[-1] - self.marks[0], self.cpu_marks[-1] - self.cpu_marks[0])}
         names = (
             "setup before the first pass",
             "first pass (read, clean, hashes, signatures; mapped)",
@@ -80,8 +113,10 @@ class _PhaseClock:
             "encode (mapped)",
             "pack, ledger, signatures, manifest (driver)",
         )
-        edges = [start, *times, end]
-        return {name: edges[i + 1] - edges[i] for i, name in enumerate(names)}
+        return {
+            name: (self.marks[i + 1] - self.marks[i], self.cpu_marks[i + 1] - self.cpu_marks[i])
+            for i, name in enumerate(names)
+        }
 
 
 def _tree_digest(folder: Path) -> str:
@@ -102,12 +137,12 @@ def _one(engine: str, corpus: Path, definition_path: Path, output: Path, workers
     figures: dict[str, Any] = {"engine": engine, "workers": workers}
     if engine == "local":
         clock = _PhaseClock(local_mapper(workers))
-        start = time.perf_counter()
+        clock.mark()
         result = run_pipeline(definition, mapper=clock)
-        end = time.perf_counter()
-        figures["peak_rss_mib"] = {
-            "driver": _peak_rss_mib(),
-            "largest pool worker": _children_peak_rss_mib(),
+        clock.mark()
+        figures["peak_mib"] = {
+            "driver": (_peak_rss_mib(), _high_water_mib()),
+            "largest pool worker": (clock.worker_maxrss, clock.worker_hwm),
         }
     else:
         from distributed import default_client
@@ -119,18 +154,18 @@ def _one(engine: str, corpus: Path, definition_path: Path, output: Path, workers
             figures["cluster_start_s"] = time.perf_counter() - begin
             client = default_client()
             clock = _PhaseClock(mapper)
-            start = time.perf_counter()
+            clock.mark()
             result = run_pipeline(definition, mapper=clock)
-            end = time.perf_counter()
-            per_worker = client.run(_peak_rss_mib)
-            scheduler = client.run_on_scheduler(_peak_rss_mib)
-        figures["peak_rss_mib"] = {
-            "driver": _peak_rss_mib(),
+            clock.mark()
+            per_worker = client.run(_worker_peaks)
+            scheduler = client.run_on_scheduler(_worker_peaks)
+        figures["peak_mib"] = {
+            "driver": (_peak_rss_mib(), _high_water_mib()),
             "scheduler (in the driver process)": scheduler,
             **{f"worker {address}": value for address, value in sorted(per_worker.items())},
         }
-    figures["run_s"] = end - start
-    figures["phases_s"] = clock.phases(start, end)
+    figures["run_s"] = clock.marks[-1] - clock.marks[0]
+    figures["phases_s"] = clock.phases()
     figures["output_digest"] = _tree_digest(result.output)
     figures["documents"] = result.manifest["ledger"]["rows"]
     figures["tokens"] = sum(split["tokens"] for split in result.manifest["splits"].values())
@@ -164,11 +199,13 @@ def _show(figures: dict[str, Any]) -> None:
     if "cluster_start_s" in figures:
         print(f" (+ {figures['cluster_start_s']:.2f} s starting the cluster)", end="")
     print()
-    for name, seconds in figures["phases_s"].items():
+    print("      wall  share  driver CPU  phase")
+    for name, (seconds, cpu) in figures["phases_s"].items():
         share = seconds / figures["run_s"] * 100 if figures["run_s"] else 0.0
-        print(f"  {seconds:8.2f} s {share:5.1f} %  {name}")
-    for name, mib in figures["peak_rss_mib"].items():
-        print(f"  peak RSS {mib:8.1f} MiB  {name}")
+        print(f"  {seconds:8.2f} s {share:5.1f} % {cpu:8.2f} s  {name}")
+    print("  peak memory (MiB): getrusage ru_maxrss / VmHWM")
+    for name, (maxrss, hwm) in figures["peak_mib"].items():
+        print(f"  {maxrss:8.1f} / {hwm:8.1f}  {name}")
 
 
 def main(argv: list[str] | None = None) -> int:
