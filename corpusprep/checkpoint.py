@@ -14,8 +14,9 @@ changes the key of the first step that depends on it and of every step
 after it, and only those are redone.
 
 Steps recorded: ``first_pass`` (read, clean, exact keys, signatures),
-``exact_step``, ``near_step``, ``split_step``. Tokenizer training and packing
-are deterministic and are redone on resume.
+``exact_step``, ``near_step``, ``split_step``, ``tokenize_step`` (the trained
+tokenizer and the token streams) and ``pack_train``, ``pack_validation``,
+``pack_test`` (each split's shards).
 """
 
 from __future__ import annotations
@@ -46,6 +47,10 @@ STEPS: dict[str, dict[str, tuple[str, ...] | None]] = {
     "exact_step": {"exact": ("enabled",)},
     "near_step": {"near": None},
     "split_step": {"split": None},
+    "tokenize_step": {"tokenizer": None},
+    "pack_train": {"pack": None},
+    "pack_validation": {"pack": None},
+    "pack_test": {"pack": None},
 }
 _FILE = "checkpoints.json"
 

@@ -44,7 +44,7 @@ from corpusprep.pool import Mapper, local_mapper
 from corpusprep.read import InputFile, read_folder
 from corpusprep.schema import DOC_SCHEMA, EMPTY, EXACT_COPY, KEPT, NEAR_COPY, REJECTED, STATUSES
 from corpusprep.split import SPLITS, assign_splits, components
-from corpusprep.tokens import Tokenizer, build_tokenizer
+from corpusprep.tokens import Tokenizer, build_tokenizer, tokenizer_from_state, tokenizer_state
 
 __all__ = ["ProgressCallback", "RunResult", "run_pipeline"]
 
@@ -73,6 +73,10 @@ _STEP_STATE = {
     "exact_step": ("status", "duplicate_of"),
     "near_step": ("status", "duplicate_of", "cluster_of", "similarity", "signed_rows"),
     "split_step": ("split_of",),
+    "tokenize_step": ("tokenizer", "dtype", "token_count", "offsets", "lengths"),
+    "pack_train": ("splits",),
+    "pack_validation": ("splits",),
+    "pack_test": ("splits",),
 }
 #: Fault injection for the kill-and-resume tests: SIGKILL the run right after this step's checkpoint.
 _KILL_AFTER_VARIABLE = "CORPUSPREP_FAULT_KILL_AFTER"
@@ -189,6 +193,7 @@ class _Run:
         self.stages: dict[str, dict[str, Any]] = {}
         self.inputs: list[InputFile] = []
         self.split_of: list[str | None] = []
+        self.splits: dict[str, Any] = {}
         self.signature_dtype = np.dtype(np.uint32)
         self.permutations = 0
         self.checkpoints = Checkpoints(self.work)
@@ -197,10 +202,16 @@ class _Run:
     def state(self, step: str) -> dict[str, Any]:
         """What ``step`` leaves for the steps after it (saved in its checkpoint)."""
         names = _STEP_STATE[step]
-        state = {name: getattr(self, name) for name in names if name != "split_of"}
+        plain = ("split_of", "tokenizer", "offsets", "lengths")
+        state = {name: getattr(self, name) for name in names if name not in plain}
         if "split_of" in names:
             codes = [SPLITS.index(split) if split is not None else -1 for split in self.split_of]
             state["split_codes"] = np.array(codes, dtype=np.int8)
+        if "tokenizer" in names:
+            state["tokenizer_state"] = tokenizer_state(self.tokenizer)
+            for split in SPLITS:
+                state[f"offsets_{split}"] = self.offsets[split]
+                state[f"lengths_{split}"] = self.lengths[split]
         state["stages"] = self.stages
         return state
 
@@ -211,6 +222,11 @@ class _Run:
             codes = state.pop("split_codes", None)
             if codes is not None:
                 self.split_of = [SPLITS[code] if code >= 0 else None for code in codes.tolist()]
+            described = state.pop("tokenizer_state", None)
+            if described is not None:
+                self.tokenizer = tokenizer_from_state(described)
+                self.offsets = {split: state.pop(f"offsets_{split}") for split in SPLITS}
+                self.lengths = {split: state.pop(f"lengths_{split}") for split in SPLITS}
             for key, value in state.items():
                 setattr(self, key, value)
 
@@ -465,54 +481,61 @@ class _Run:
         }
         self.tokenizer.save(self.partial / TOKENIZER_FILE)
 
-    def pack_step(self) -> None:
+    def pack_train(self) -> None:
+        self._pack(SPLITS[0])
+
+    def pack_validation(self) -> None:
+        self._pack(SPLITS[1])
+
+    def pack_test(self) -> None:
+        self._pack(SPLITS[2])
+
+    def _pack(self, split: str) -> None:
+        """Pack one split into its shards (any earlier shard of that split is replaced)."""
         config = self.definition.pack
         specials = self.tokenizer.special_ids()
         shard_folder = self.partial / SHARD_FOLDER
-        if shard_folder.exists():
-            shutil.rmtree(shard_folder)
-        shard_folder.mkdir()
-        self.splits: dict[str, Any] = {}
-        for split in SPLITS:
-            count = len(self.offsets[split])
-            path = self.work / f"tokens-{split}.raw"
-            tokens = (
-                np.memmap(path, dtype=self.dtype, mode="r")
-                if path.stat().st_size
-                else np.zeros(0, self.dtype)
-            )
-            order = document_order(count, config.seed, split)
-            offsets, lengths = self.offsets[split], self.lengths[split]
-            documents = (tokens[offsets[i] : offsets[i] + lengths[i]] for i in order.tolist())
-            result = pack_split(
-                split,
-                documents,
-                config=config,
-                eod_id=specials["end_of_document"],
-                pad_id=specials["pad"],
-                bod_id=specials.get("begin_of_document"),
-                dtype=self.dtype,
-                folder=shard_folder,
-            )
-            del tokens
-            self.splits[split] = {
-                "documents": result.documents,
-                "tokens": result.tokens,
-                "windows": result.windows,
-                "pad_tokens": result.pad_tokens,
-                "dropped_tokens": result.dropped_tokens,
-                "shards": [
-                    {
-                        "file": f"{SHARD_FOLDER}/{shard.file}",
-                        "shape": list(shard.shape),
-                        "dtype": shard.dtype,
-                        "bytes": shard.bytes,
-                        "xxh3_128": shard.xxh3_128,
-                    }
-                    for shard in result.shards
-                ],
-            }
-            self.progress("pack", SPLITS.index(split) + 1, len(SPLITS))
+        shard_folder.mkdir(exist_ok=True)
+        for stale in shard_folder.glob(f"{split}-*"):
+            stale.unlink()
+        self.splits = {name: info for name, info in self.splits.items() if name != split}
+        count = len(self.offsets[split])
+        path = self.work / f"tokens-{split}.raw"
+        tokens = (
+            np.memmap(path, dtype=self.dtype, mode="r") if path.stat().st_size else np.zeros(0, self.dtype)
+        )
+        order = document_order(count, config.seed, split)
+        offsets, lengths = self.offsets[split], self.lengths[split]
+        documents = (tokens[offsets[i] : offsets[i] + lengths[i]] for i in order.tolist())
+        result = pack_split(
+            split,
+            documents,
+            config=config,
+            eod_id=specials["end_of_document"],
+            pad_id=specials["pad"],
+            bod_id=specials.get("begin_of_document"),
+            dtype=self.dtype,
+            folder=shard_folder,
+        )
+        del tokens
+        self.splits[split] = {
+            "documents": result.documents,
+            "tokens": result.tokens,
+            "windows": result.windows,
+            "pad_tokens": result.pad_tokens,
+            "dropped_tokens": result.dropped_tokens,
+            "shards": [
+                {
+                    "file": f"{SHARD_FOLDER}/{shard.file}",
+                    "shape": list(shard.shape),
+                    "dtype": shard.dtype,
+                    "bytes": shard.bytes,
+                    "xxh3_128": shard.xxh3_128,
+                }
+                for shard in result.shards
+            ],
+        }
+        self.progress("pack", SPLITS.index(split) + 1, len(SPLITS))
 
     # ------------------------------------------------------------------ records
     def signatures_step(self) -> dict[str, Any] | None:
@@ -675,8 +698,6 @@ def run_pipeline(
             if kill_after == step:
                 os.kill(os.getpid(), signal.SIGKILL)
         run.stages.pop("resumed_after", None)
-        run.tokenize_step()
-        run.pack_step()
         ledger = run.ledger_step()
         signatures = run.signatures_step()
         manifest = run.manifest(ledger, signatures)

@@ -66,9 +66,9 @@ import dataclasses
 import json
 import os
 from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Protocol, runtime_checkable
+from typing import Any, Protocol, runtime_checkable
 
 import numpy as np
 
@@ -87,6 +87,8 @@ __all__ = [
     "check_special_pieces",
     "check_special_token",
     "checked_ids",
+    "tokenizer_from_state",
+    "tokenizer_state",
     "write_text_atomically",
 ]
 
@@ -508,3 +510,59 @@ def write_text_atomically(path: Path, text: str) -> None:
     with open(partial, "w", encoding="utf-8", newline="\n") as handle:
         handle.write(text)
     os.replace(partial, path)
+
+
+def tokenizer_state(tokenizer: Tokenizer) -> dict[str, Any]:
+    """A JSON-ready description from which :func:`tokenizer_from_state` rebuilds ``tokenizer``.
+
+    Used by resume checkpoints, so a trained tokenizer is not trained again. Only
+    the project's own kinds are described (no pickles: a tampered checkpoint can
+    at worst fail to load, never run code).
+    """
+    from corpusprep.bpe import JsonTokenizer
+    from corpusprep.vocab import CharacterTokenizer
+
+    if isinstance(tokenizer, ByteTokenizer):
+        return {"class": "bytes", "config": asdict(tokenizer.config)}
+    if isinstance(tokenizer, CharacterTokenizer):
+        return {
+            "class": "characters",
+            "config": asdict(tokenizer.config),
+            "characters": tokenizer.characters,
+            "facts_json": tokenizer.facts_json,
+        }
+    if isinstance(tokenizer, JsonTokenizer):
+        return {
+            "class": "json",
+            "kind": tokenizer.kind,
+            "json_text": tokenizer.json_text,
+            "special_tokens": [list(pair) for pair in tokenizer.special_tokens],
+            "encode_special_tokens": tokenizer.encode_special_tokens,
+            "facts_json": tokenizer.facts_json,
+        }
+    raise IntegrityError(f"no checkpoint form for tokenizer {type(tokenizer).__name__}")
+
+
+def tokenizer_from_state(state: dict[str, Any]) -> Tokenizer:
+    """The tokenizer :func:`tokenizer_state` described."""
+    from corpusprep.bpe import JsonTokenizer
+    from corpusprep.vocab import CharacterTokenizer
+
+    kind = state.get("class")
+    if kind == "bytes":
+        return ByteTokenizer(config=TokenizerConfig(**state["config"]))
+    if kind == "characters":
+        return CharacterTokenizer(
+            config=TokenizerConfig(**state["config"]),
+            characters=str(state["characters"]),
+            facts_json=str(state["facts_json"]),
+        )
+    if kind == "json":
+        return JsonTokenizer(
+            kind=str(state["kind"]),
+            json_text=str(state["json_text"]),
+            special_tokens=tuple((str(role), str(text)) for role, text in state["special_tokens"]),
+            encode_special_tokens=bool(state["encode_special_tokens"]),
+            facts_json=str(state["facts_json"]),
+        )
+    raise IntegrityError(f"unknown tokenizer checkpoint class {kind!r}")

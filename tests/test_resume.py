@@ -129,3 +129,17 @@ def test_an_interrupt_keeps_the_checkpoints(archive: Path, tmp_path: Path) -> No
     stages_seen: set[str] = set()
     run_pipeline(definition, workers=1, progress=lambda stage, done, total: stages_seen.add(stage))
     assert "read" not in stages_seen and (output / "manifest.json").exists()
+
+
+@pytest.mark.slow
+def test_a_changed_pack_setting_keeps_the_trained_tokenizer(archive: Path, tmp_path: Path) -> None:
+    output = tmp_path / "out"
+    env = dict(os.environ, CORPUSPREP_FAULT_KILL_AFTER="pack_validation")
+    subprocess.run(_command(archive, output), env=env, capture_output=True)
+    base = load_definition(DEMO).with_folders(input=archive, output=output)
+    changed = dataclasses.replace(base, pack=dataclasses.replace(base.pack, length=base.pack.length // 2))
+    stages_seen: set[str] = set()
+    run_pipeline(changed, workers=1, progress=lambda stage, done, total: stages_seen.add(stage))
+    assert not {"read", "tokenize"} & stages_seen, "the tokenizer checkpoint must be reused"
+    fresh = run_pipeline(changed.with_folders(output=tmp_path / "fresh"), workers=1).output
+    assert _tree(output) == _tree(fresh)
