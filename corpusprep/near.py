@@ -24,11 +24,14 @@ where signature-only checks miss those whose estimate falls just below t):
 * ``verify = "signature"``: the fraction of equal signature positions must be
   >= ``threshold``;
 * ``verify = "exact"``: the exact Jaccard similarity of the two shingle sets,
-  given by the ``shingles_of(i)`` callable, must be >= ``threshold``. To spare
-  loading shingles for hopeless candidates, pairs whose signature estimate is
+  given by the ``shingles_of(i)`` callable, must be >= ``threshold``. Only the
+  uncertain candidates are checked exactly: a pair whose signature estimate is
   more than 4 standard errors, 4 * sqrt(t (1 - t) / permutations), below the
-  threshold t are rejected without an exact check (the binomial model puts the
-  chance of that for a pair exactly at the threshold near 3e-5).
+  threshold t is rejected, and one more than 4 standard errors above it is
+  accepted, without loading shingles (the binomial model puts the chance of
+  either mistake for a pair at the threshold near 3e-5). Near copies of a
+  corpus with many copies are mostly far above the threshold, so this keeps
+  the re-shingling cost to the borderline pairs.
 
 Clusters
 --------
@@ -49,6 +52,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+from collections import OrderedDict
 from collections.abc import Callable
 
 import numpy as np
@@ -276,15 +280,31 @@ class _UnionFind:
         )
 
 
+_SHINGLE_CACHE_DOCUMENTS = 2048
+
+
 def _exact_similarity(pairs: np.ndarray, shingles_of: Callable[[int], np.ndarray]) -> np.ndarray:
-    """Exact Jaccard of each pair; the left document's shingles are loaded once per run of equal left."""
+    """Exact Jaccard of each pair.
+
+    Shingle sets are kept in a small least-recently-used cache (at most
+    2048 documents), so a document in many pairs is shingled once, not once per pair.
+    """
     out = np.empty(pairs.shape[0], dtype=np.float64)
-    loaded_index = -1
-    loaded = np.empty(0, dtype=np.uint64)
+    cache: OrderedDict[int, np.ndarray] = OrderedDict()
+
+    def keys_of(index: int) -> np.ndarray:
+        found = cache.get(index)
+        if found is None:
+            found = np.asarray(shingles_of(index), dtype=np.uint64)
+            cache[index] = found
+            if len(cache) > _SHINGLE_CACHE_DOCUMENTS:
+                cache.popitem(last=False)
+        else:
+            cache.move_to_end(index)
+        return found
+
     for position, (left, right) in enumerate(pairs.tolist()):
-        if left != loaded_index:
-            loaded_index, loaded = left, np.asarray(shingles_of(left), dtype=np.uint64)
-        out[position] = exact_jaccard(loaded, np.asarray(shingles_of(right), dtype=np.uint64))
+        out[position] = exact_jaccard(keys_of(left), keys_of(right))
     return out
 
 
@@ -315,8 +335,11 @@ def find_clusters(
     else:
         assert shingles_of is not None
         margin = 4.0 * math.sqrt(config.threshold * (1.0 - config.threshold) / config.permutations)
-        hopeful = candidates[estimate >= config.threshold - margin]
-        verified = hopeful[_exact_similarity(hopeful, shingles_of) >= config.threshold]
+        sure = estimate >= config.threshold + margin
+        unsure = candidates[(estimate >= config.threshold - margin) & ~sure]
+        checked = unsure[_exact_similarity(unsure, shingles_of) >= config.threshold]
+        verified = np.concatenate([candidates[sure], checked]) if checked.size else candidates[sure]
+        verified = verified[np.lexsort((verified[:, 1], verified[:, 0]))] if verified.size else verified
 
     sets = _UnionFind(count)
     for left, right in verified.tolist():

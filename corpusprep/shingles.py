@@ -341,7 +341,25 @@ def shingle_keys(text: str, *, unit: str = WORD, ngram: int = 5, seed: int = 0) 
     >>> bool(np.array_equal(fast, shingle_keys_scalar("a rose is a rose", ngram=2)))
     True
     """
-    return np.unique(shingle_key_stream(text, unit=unit, ngram=ngram, seed=seed)[0])
+    return sorted_distinct(shingle_key_stream(text, unit=unit, ngram=ngram, seed=seed)[0])
+
+
+def sorted_distinct(values: np.ndarray) -> np.ndarray:
+    """The distinct values in ascending order, by one sort.
+
+    Same result as ``np.unique``; written out because NumPy 2's ``np.unique``
+    hashes large integer arrays, which measured several times slower than a sort here.
+
+    >>> sorted_distinct(np.array([3, 1, 3, 2], dtype=np.uint64)).tolist()
+    [1, 2, 3]
+    """
+    ordered = np.sort(values)
+    if ordered.size < 2:
+        return ordered
+    keep = np.empty(ordered.size, dtype=bool)
+    keep[0] = True
+    np.not_equal(ordered[1:], ordered[:-1], out=keep[1:])
+    return ordered[keep]
 
 
 def exact_jaccard(first: np.ndarray, second: np.ndarray) -> float:
@@ -353,9 +371,10 @@ def exact_jaccard(first: np.ndarray, second: np.ndarray) -> float:
     >>> exact_jaccard(np.array([1, 2, 3], dtype=np.uint64), np.array([2, 3, 4, 5], dtype=np.uint64))
     0.4
     """
-    left = np.unique(first)
-    right = np.unique(second)
+    left = sorted_distinct(first)
+    right = sorted_distinct(second)
     if left.size == 0 and right.size == 0:
         return 0.0
-    common = np.intersect1d(left, right, assume_unique=True).size
+    both = np.sort(np.concatenate([left, right]))
+    common = int(np.count_nonzero(both[1:] == both[:-1]))
     return common / (left.size + right.size - common)
