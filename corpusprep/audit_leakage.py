@@ -49,6 +49,7 @@ from corpusprep.minhash import EMPTY_VALUE, pair_similarity
 from corpusprep.ngrams import HashedChunk, StreamTables, complete_documents, hash_stream_chunk, hash_texts
 from corpusprep.pack import document_order
 from corpusprep.schema import KEPT
+from corpusprep.shingles import sorted_distinct
 
 __all__ = [
     "EVALUATION_SPLITS",
@@ -210,18 +211,6 @@ def packed_rows(ledger: pa.Table, split: str, seed: int) -> np.ndarray:
     return ordered
 
 
-def _distinct(values: np.ndarray) -> np.ndarray:
-    """Sorted distinct values (a sort and a comparison; faster than ``np.unique`` on ``uint64``)."""
-    ordered = np.sort(values)
-    if ordered.size < 2:
-        return ordered
-    keep = np.empty(ordered.size, dtype=bool)
-    keep[0] = True
-    np.not_equal(ordered[1:], ordered[:-1], out=keep[1:])
-    distinct: np.ndarray = ordered[keep]
-    return distinct
-
-
 class _HashSet:
     """A sorted ``uint64`` array with a bit table in front of ``np.searchsorted``.
 
@@ -371,14 +360,14 @@ def ngram_overlap(
     for side in sides:
         lengths = []
         for chunk in side_chunks(side):
-            parts.append(_distinct(chunk.hashes))
+            parts.append(sorted_distinct(chunk.hashes))
             lengths.append(chunk.lengths)
         if side.name != "against":
             found = np.concatenate(lengths) if lengths else np.zeros(0, np.int64)
             findings += _stream_findings(
                 side.name, found, ledger_tokens[packed[side.name]], side.record_ids, tail
             )
-    evaluation = _distinct(np.concatenate(parts)) if parts else np.zeros(0, dtype=np.uint64)
+    evaluation = sorted_distinct(np.concatenate(parts)) if parts else np.zeros(0, dtype=np.uint64)
     members = _HashSet(evaluation)
 
     # Pass 2: stream train; remember the first train document holding each evaluation n-gram.

@@ -54,14 +54,14 @@ document is decoded with its ``decode`` function and normalised in Python.
 from __future__ import annotations
 
 import functools
-import sys
-import types
 import unicodedata
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 
 import numpy as np
 import xxhash
+
+from corpusprep.shingles import punctuation_table
 
 __all__ = [
     "DEFAULT_NGRAM",
@@ -85,19 +85,7 @@ _P = 0x9E3779B97F4A7C15  # odd: 2^64 / golden ratio
 _Q = pow(_P, -1, 1 << 64)
 _G = 0xC2B2AE3D27D4EB4F
 _R = 0x165667B19E3779F9
-_PUNCTUATION_SCAN_END = 0x20000  # no P* code point beyond plane 1 in Unicode 14 (Python 3.11)
 _SPACE = 0x20
-
-
-@functools.cache
-def _punctuation_table() -> Mapping[int, str]:
-    """Read-only ``str.translate`` table: every ``P*`` code point becomes a space."""
-    table = {
-        code: " "
-        for code in range(min(_PUNCTUATION_SCAN_END, sys.maxunicode + 1))
-        if unicodedata.category(chr(code)).startswith("P")
-    }
-    return types.MappingProxyType(table)
 
 
 def normal_words(text: str) -> list[str]:
@@ -106,7 +94,7 @@ def normal_words(text: str) -> list[str]:
     >>> normal_words("The Ferry's  timetable -- REVISED, again!")
     ['the', 'ferry', 's', 'timetable', 'revised', 'again']
     """
-    return text.lower().translate(_punctuation_table()).split()
+    return text.lower().translate(punctuation_table()).split()
 
 
 def normal_text(text: str) -> str:

@@ -81,11 +81,13 @@ __all__ = [
     "exact_jaccard",
     "is_mostly_unspaced",
     "normalize_view",
+    "punctuation_table",
     "resolve_unit",
     "shingle_key_stream",
     "shingle_keys",
     "shingle_keys_scalar",
     "shingle_strings",
+    "sorted_distinct",
     "view_words",
 ]
 
@@ -122,7 +124,7 @@ _PUNCTUATION_SCAN_END = 0x20000
 
 
 @functools.cache
-def _punctuation_table() -> Mapping[int, str]:
+def punctuation_table() -> Mapping[int, str]:
     """Read-only ``str.translate`` table mapping every ``P*`` code point to a space."""
     table = {
         code: " "
@@ -140,14 +142,14 @@ def normalize_view(text: str) -> str:
     >>> normalize_view("...!?")
     ''
     """
-    return " ".join(text.casefold().translate(_punctuation_table()).split())
+    return " ".join(text.casefold().translate(punctuation_table()).split())
 
 
 @functools.cache
 def _separator_table() -> np.ndarray:
     """Read-only boolean table over all code points: True for ``P*`` and for whitespace (``str.isspace``)."""
     table = np.zeros(sys.maxunicode + 1, dtype=bool)
-    table[list(_punctuation_table())] = True
+    table[list(punctuation_table())] = True
     table[[code for code in range(0x3001) if chr(code).isspace()]] = True  # none lies above U+3000
     table.flags.writeable = False
     return table
