@@ -66,6 +66,12 @@ class PackConfig:
         choices=TAILS,
     )
     seed: int = setting(0, "Seed of the order of documents inside each split.", minimum=0, maximum=_MAX_SEED)
+    document_starts: bool = setting(
+        False,
+        "Also write, beside each shard, where documents start inside its windows "
+        "(SHARD.starts.npy: int32 rows of [window, position]), so a trainer can stop attention "
+        "at document boundaries.",
+    )
 
     def __post_init__(self) -> None:
         for item in dataclasses.fields(self):

@@ -35,7 +35,7 @@ from corpusprep.clean import CleanConfig, clean_batch
 from corpusprep.definition import Definition
 from corpusprep.errors import InputError, IntegrityError, OutputExistsError, TooManyRejectedError
 from corpusprep.exact import ExactConfig, exact_keys, first_occurrences
-from corpusprep.hashing import hash_file, hash_text
+from corpusprep.hashing import hash_bytes, hash_file, hash_text
 from corpusprep.ledger import LEDGER_FILE, write_ledger
 from corpusprep.manifest import MANIFEST_FILE, SCHEMA_VERSION, write_json_atomic
 from corpusprep.near import NearConfig, document_shingles, find_clusters, signature_batch
@@ -43,6 +43,7 @@ from corpusprep.pack import document_order, pack_split, smallest_dtype
 from corpusprep.pool import Mapper, local_mapper
 from corpusprep.read import InputFile, read_folder
 from corpusprep.schema import DOC_SCHEMA, EMPTY, EXACT_COPY, KEPT, NEAR_COPY, REJECTED, STATUSES
+from corpusprep.shards import npy_header, read_shard
 from corpusprep.split import SPLITS, assign_splits, components
 from corpusprep.tokens import Tokenizer, build_tokenizer, tokenizer_from_state, tokenizer_state
 
@@ -481,6 +482,41 @@ class _Run:
         }
         self.tokenizer.save(self.partial / TOKENIZER_FILE)
 
+    def _document_starts(self, folder: Path, files: list[str], eod_id: int) -> dict[str, dict[str, Any]]:
+        """Write ``NAME.starts.npy`` beside each shard: [window, position] of every document start.
+
+        A document starts at the first token of the split's stream and right after each
+        end-of-document token; positions index the window's input ``x = w[:-1]``.
+        """
+        length = self.definition.pack.length
+        carry = eod_id  # the stream's first token starts a document
+        entries: dict[str, dict[str, Any]] = {}
+        for name in files:
+            windows = read_shard(folder / name, check_hash=False)
+            previous_last = (
+                np.concatenate(([carry], windows[:-1, length - 1])) if len(windows) else np.zeros(0)
+            )
+            first = np.flatnonzero(previous_last == eod_id)
+            rows, columns = np.nonzero(windows[:, : length - 1] == eod_id)
+            starts = np.concatenate(
+                [np.stack([first, np.zeros_like(first)], axis=1), np.stack([rows, columns + 1], axis=1)]
+            ).astype("<i4")
+            starts = starts[np.lexsort((starts[:, 1], starts[:, 0]))] if len(starts) else starts.reshape(0, 2)
+            if len(windows):
+                carry = int(windows[-1, length - 1])
+            target = folder / name.replace(".npy", ".starts.npy")
+            data = npy_header(starts.dtype, starts.shape) + np.ascontiguousarray(starts).tobytes()
+            temporary = target.with_name(f".{target.name}.partial")
+            temporary.write_bytes(data)
+            temporary.replace(target)
+            entries[name] = {
+                "file": f"{SHARD_FOLDER}/{target.name}",
+                "count": len(starts),
+                "bytes": len(data),
+                "xxh3_128": hash_bytes(data),
+            }
+        return entries
+
     def pack_train(self) -> None:
         self._pack(SPLITS[0])
 
@@ -518,6 +554,13 @@ class _Run:
             folder=shard_folder,
         )
         del tokens
+        starts = (
+            self._document_starts(
+                shard_folder, [shard.file for shard in result.shards], specials["end_of_document"]
+            )
+            if config.document_starts
+            else {}
+        )
         self.splits[split] = {
             "documents": result.documents,
             "tokens": result.tokens,
@@ -531,6 +574,7 @@ class _Run:
                     "dtype": shard.dtype,
                     "bytes": shard.bytes,
                     "xxh3_128": shard.xxh3_128,
+                    **({"document_starts": starts[shard.file]} if shard.file in starts else {}),
                 }
                 for shard in result.shards
             ],
@@ -650,6 +694,9 @@ class _Run:
                 "input": "window[:-1]",
                 "target": "window[1:]",
                 "tail": pack.tail,
+                "pad_id": self.tokenizer.special_ids()["pad"],
+                "loss": "targets equal to pad_id are padding: leave them out of the loss",
+                "document_starts": pack.document_starts,
             },
             "splits": self.splits,
             "signatures": signatures,

@@ -280,3 +280,30 @@ def test_a_worker_that_dies_fails_the_map_clearly() -> None:
 
     with pytest.raises(WorkerDiedError, match="ended abruptly"):
         list(ordered_map(_die_on_second_batch, range(6), workers=2))
+
+
+def test_document_starts_mark_every_document_beginning(demo_output: Path) -> None:
+    # Reference: rebuild each split's token stream in plain Python from the shards (windows overlap
+    # by one token) and list the stream positions that follow an end-of-document token (plus 0).
+    manifest = _manifest(demo_output)
+    assert manifest["windows"]["document_starts"] is True
+    length = manifest["windows"]["length"]
+    eod = manifest["tokenizer"]["special_tokens"]["end_of_document"]["id"]
+    for info in manifest["splits"].values():
+        stream: list[int] = []
+        found: list[int] = []
+        for shard in info["shards"]:
+            windows = np.load(demo_output / shard["file"], mmap_mode="r", allow_pickle=False)
+            entry = shard["document_starts"]
+            data = (demo_output / entry["file"]).read_bytes()
+            assert xxhash.xxh3_128(data).hexdigest() == entry["xxh3_128"] and len(data) == entry["bytes"]
+            starts = np.load(demo_output / entry["file"], allow_pickle=False)
+            assert starts.dtype == np.dtype("<i4") and starts.shape == (entry["count"], 2)
+            base = len(stream) - (1 if stream else 0)
+            for row, column in starts.tolist():
+                found.append(base + row * length + column)
+            for window in windows:
+                stream.extend(int(t) for t in (window[1:] if stream else window))
+        covered = len(stream) - 1  # positions that are some window's input
+        expected = [p for p in range(covered) if p == 0 or stream[p - 1] == eod]
+        assert found == expected
