@@ -268,6 +268,14 @@ def _check_shards(
                         shape = [int(extent) for extent in array.shape]
                         found += _shard_fields(relative, record, shape, array.dtype.str, windows)
                         del array
+            starts = record.get("document_starts")
+            if isinstance(starts, dict):  # optional: where documents begin (pack.document_starts)
+                starts_path, starts_refused = _member(
+                    folder, starts.get("file"), f"{where[:-5]}.document_starts.file"
+                )
+                findings += starts_refused
+                if starts_path is not None:
+                    findings += _check_file(starts_path, starts, str(starts["file"]))
             rows += int(record.get("shape", [0])[0])
             if found or good is None:
                 good = None

@@ -250,3 +250,16 @@ def test_ledger_token_counts_must_match_the_stream(copy: Path) -> None:
     found = _kinds(copy, AuditConfig())
     assert {item["key"] for item in found["count_mismatch"]} == {"splits.validation.tokens"}
     assert [item["record_id"] for item in found["stream_mismatch"]] == [target["record_id"]]
+
+
+def test_a_flipped_byte_in_a_document_starts_file_is_damage(copy: Path) -> None:
+    # the demo writes shards/NAME.starts.npy (pack.document_starts); its hash is in the manifest
+    manifest = _manifest(copy)
+    entry = manifest["splits"]["train"]["shards"][0]["document_starts"]
+    path = copy / entry["file"]
+    data = bytearray(path.read_bytes())
+    data[-1] ^= 0xFF
+    path.write_bytes(bytes(data))
+    found = _kinds(copy)
+    assert found["file_hash"][0]["file"] == entry["file"]
+    assert found["file_hash"][0]["found"] == xxhash.xxh3_128(bytes(data)).hexdigest()
