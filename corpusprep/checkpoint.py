@@ -82,7 +82,7 @@ def step_keys(resolved: Mapping[str, Mapping[str, Any]], fingerprint: str, versi
     >>> b = step_keys({"read": {}, "clean": {}, "exact": {"key": "text", "enabled": True},
     ...                "near": {"seed": 0, "threshold": 0.9}, "split": {"seed": 1}}, "f", "1")
     >>> [a[s] == b[s] for s in STEPS]
-    [True, True, False, False]
+    [True, True, False, False, False, False, False, False]
     """
     keys: dict[str, str] = {}
     previous = hash_text(f"{version}\n{fingerprint}")
