@@ -27,18 +27,26 @@ size. A split with no windows writes no shard file.
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from corpusprep.config import setting
 from corpusprep.errors import DefinitionError, IntegrityError
-from corpusprep.hashing import keyed_hash64
-from corpusprep.shards import ShardInfo, shard_dtype, shard_name, write_shard
+from corpusprep.hashing import hash_bytes, keyed_hash64
+from corpusprep.shards import ShardInfo, npy_header, read_shard, shard_dtype, shard_name, write_shard
 
-__all__ = ["PackConfig", "PackResult", "document_order", "pack_split", "smallest_dtype"]
+__all__ = [
+    "PackConfig",
+    "PackResult",
+    "document_order",
+    "pack_split",
+    "smallest_dtype",
+    "write_document_starts",
+]
 
 TAILS = ("drop", "pad")
 _MAX_SEED = 2**64 - 1
@@ -281,3 +289,40 @@ def pack_split(
     )
     result.check_accounting()
     return result
+
+
+def write_document_starts(
+    folder: Path, files: Sequence[str], *, length: int, eod_id: int, prefix: str = ""
+) -> dict[str, dict[str, Any]]:
+    """Write ``NAME.starts.npy`` beside each shard of one split: [window, position] of every document start.
+
+    ``files`` are the split's shard names in order. A document starts at the first token
+    of the split's stream and right after each end-of-document token; positions index
+    the window's input ``x = w[:-1]``. Returns, per shard name, the manifest entry
+    (``file`` with ``prefix``, ``count``, ``bytes``, ``xxh3_128``).
+    """
+    carry = eod_id  # the stream's first token starts a document
+    entries: dict[str, dict[str, Any]] = {}
+    for name in files:
+        windows = read_shard(folder / name, check_hash=False)
+        previous_last = np.concatenate(([carry], windows[:-1, length - 1])) if len(windows) else np.zeros(0)
+        first = np.flatnonzero(previous_last == eod_id)
+        rows, columns = np.nonzero(windows[:, : length - 1] == eod_id)
+        starts = np.concatenate(
+            [np.stack([first, np.zeros_like(first)], axis=1), np.stack([rows, columns + 1], axis=1)]
+        ).astype("<i4")
+        starts = starts[np.lexsort((starts[:, 1], starts[:, 0]))] if len(starts) else starts.reshape(0, 2)
+        if len(windows):
+            carry = int(windows[-1, length - 1])
+        target = folder / name.replace(".npy", ".starts.npy")
+        data = npy_header(starts.dtype, starts.shape) + np.ascontiguousarray(starts).tobytes()
+        temporary = target.with_name(f".{target.name}.partial")
+        temporary.write_bytes(data)
+        temporary.replace(target)
+        entries[name] = {
+            "file": f"{prefix}{target.name}",
+            "count": len(starts),
+            "bytes": len(data),
+            "xxh3_128": hash_bytes(data),
+        }
+    return entries

@@ -21,31 +21,30 @@ import shutil
 import signal
 from collections import Counter
 from collections.abc import Callable, Iterator
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from corpusprep import __version__
+from corpusprep.batchwork import bounded_slices, encode_texts, hex_pair, prepare_batch
 from corpusprep.checkpoint import Checkpoints, input_fingerprint, step_keys
-from corpusprep.clean import CleanConfig, clean_batch
 from corpusprep.definition import Definition
-from corpusprep.errors import InputError, IntegrityError, OutputExistsError, TooManyRejectedError
-from corpusprep.exact import ExactConfig, exact_keys, first_occurrences
-from corpusprep.hashing import hash_bytes, hash_file, hash_text
+from corpusprep.errors import InputError, IntegrityError, TooManyRejectedError
+from corpusprep.exact import first_occurrences
+from corpusprep.hashing import hash_file, hash_text
 from corpusprep.ledger import LEDGER_FILE, write_ledger
 from corpusprep.manifest import MANIFEST_FILE, SCHEMA_VERSION, write_json_atomic
-from corpusprep.near import NearConfig, document_shingles, find_clusters, signature_batch
-from corpusprep.pack import document_order, pack_split, smallest_dtype
+from corpusprep.near import document_shingles, find_clusters
+from corpusprep.pack import document_order, pack_split, smallest_dtype, write_document_starts
 from corpusprep.pool import Mapper, local_mapper
+from corpusprep.publish import check_output_folder, publish_folder
 from corpusprep.read import InputFile, read_folder
 from corpusprep.schema import DOC_SCHEMA, EMPTY, EXACT_COPY, KEPT, NEAR_COPY, REJECTED, STATUSES
-from corpusprep.shards import npy_header, read_shard
 from corpusprep.split import SPLITS, assign_splits, components
-from corpusprep.tokens import Tokenizer, build_tokenizer, tokenizer_from_state, tokenizer_state
+from corpusprep.tokens import build_tokenizer, tokenizer_from_state, tokenizer_state
 
 __all__ = ["ProgressCallback", "RunResult", "run_pipeline"]
 
@@ -93,90 +92,6 @@ class RunResult:
 
     output: Path
     manifest: dict[str, Any]
-
-
-@dataclass(slots=True)
-class _Prepared:
-    """One batch after the first pass: cleaned rows plus per-row fixed-width data."""
-
-    batch: pa.RecordBatch
-    text_hashes: np.ndarray  # (rows, 2) uint64, zero for rows not kept
-    exact_keys: np.ndarray  # (rows, 2) uint64
-    signatures: np.ndarray | None  # (rows, permutations), rows not kept are zero
-    counts: dict[str, Counter[str]] = field(default_factory=dict)
-
-
-def _prepare(batch: pa.RecordBatch, clean: CleanConfig, exact: ExactConfig, near: NearConfig) -> _Prepared:
-    """First-pass work on one batch (runs in a worker process)."""
-    cleaned, clean_counts = clean_batch(batch, clean)
-    status = cleaned.column("status").to_pylist()
-    texts = [
-        text if state == KEPT else None
-        for text, state in zip(cleaned.column("text").to_pylist(), status, strict=True)
-    ]
-    text_hashes = exact_keys(texts, ExactConfig(key="text"))
-    keys = text_hashes if exact.key == "text" else exact_keys(texts, exact)
-    signatures = None
-    near_counts: dict[str, int] = {}
-    if near.enabled:
-        signatures, near_counts = signature_batch(cleaned, near)
-    return _Prepared(
-        batch=cleaned,
-        text_hashes=text_hashes,
-        exact_keys=keys,
-        signatures=signatures,
-        counts={"clean": Counter(clean_counts), "near": Counter(near_counts)},
-    )
-
-
-def _bounded_slices(batch: pa.RecordBatch, limit: int) -> Iterator[pa.RecordBatch]:
-    """Cut ``batch`` into consecutive slices holding at most ``limit`` bytes of text each.
-
-    A slice always holds at least one row. The cut depends only on the batch, so
-    the work is spread over workers the same way whatever their number.
-    """
-    text: Any = batch.column("text")
-    measured: Any = pc.binary_length(text)
-    lengths = np.asarray(pc.fill_null(measured, 0))
-    start, total = 0, 0
-    for row, length in enumerate(lengths.tolist()):
-        if row > start and total + length > limit:
-            yield batch.slice(start, row - start)
-            start, total = row, 0
-        total += length
-    if start < batch.num_rows:
-        yield batch.slice(start, batch.num_rows - start)
-
-
-def _encode(tokenizer: Tokenizer, texts: list[str]) -> list[np.ndarray]:
-    return tokenizer.encode_batch(texts)
-
-
-def _hex(pair: np.ndarray) -> str:
-    return f"{int(pair[0]):016x}{int(pair[1]):016x}"
-
-
-def _publish(partial: Path, output: Path) -> None:
-    """Replace ``output`` by ``partial`` with renames; an old output is removed only after."""
-    old = None
-    if output.exists():
-        if output.is_dir() and not any(output.iterdir()):
-            output.rmdir()
-        else:
-            old = output.with_name(f".{output.name}.old-{os.getpid()}")
-            output.rename(old)
-    partial.rename(output)
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
-
-
-def _check_output(output: Path, force: bool) -> None:
-    if output.exists() and not output.is_dir():
-        raise OutputExistsError(f"{output}: the output path exists and is not a folder")
-    if output.is_dir() and any(output.iterdir()) and not force:
-        raise OutputExistsError(
-            f"{output}: the output folder is not empty; choose another folder or pass --force to replace it"
-        )
 
 
 class _Run:
@@ -235,7 +150,7 @@ class _Run:
     def first_pass(self) -> None:
         definition = self.definition
         prepare = functools.partial(
-            _prepare, clean=definition.clean, exact=definition.exact, near=definition.near
+            prepare_batch, clean=definition.clean, exact=definition.exact, near=definition.near
         )
         batches: Iterator[pa.RecordBatch] = self._read_batches()
         statuses: list[np.ndarray] = []
@@ -245,7 +160,6 @@ class _Run:
         counts: dict[str, Counter[str]] = {"clean": Counter(), "near": Counter()}
         reasons: Counter[str] = Counter()
         examples: list[str] = []
-        self.signature_path = self.work / "signatures.npy"
         signature_chunks = 0
         rows = 0
         with (
@@ -315,7 +229,7 @@ class _Run:
             if isinstance(item, InputFile):
                 self.inputs.append(item)
             else:
-                yield from _bounded_slices(item, _BATCH_TEXT_BYTES)
+                yield from bounded_slices(item, _BATCH_TEXT_BYTES)
 
     # ------------------------------------------------------------------ barriers
     def exact_step(self) -> None:
@@ -400,7 +314,7 @@ class _Run:
                     group_left.append(index)
                     group_right.append(first)
             else:
-                member_keys.append("h:" + _hex(self.text_hashes[row]))
+                member_keys.append("h:" + hex_pair(self.text_hashes[row]))
         if group_left:
             edges.append((np.array(group_left, dtype=np.int64), np.array(group_right, dtype=np.int64)))
         component_of = components(len(kept), edges)
@@ -440,7 +354,7 @@ class _Run:
         offsets: dict[str, list[int]] = {name: [] for name in SPLITS}
         lengths: dict[str, list[int]] = {name: [] for name in SPLITS}
         written = dict.fromkeys(SPLITS, 0)
-        encode = functools.partial(_encode, self.tokenizer)
+        encode = functools.partial(encode_texts, self.tokenizer)
         row_lists: list[list[int]] = []
 
         def kept_texts() -> Iterator[list[str]]:
@@ -482,41 +396,6 @@ class _Run:
         }
         self.tokenizer.save(self.partial / TOKENIZER_FILE)
 
-    def _document_starts(self, folder: Path, files: list[str], eod_id: int) -> dict[str, dict[str, Any]]:
-        """Write ``NAME.starts.npy`` beside each shard: [window, position] of every document start.
-
-        A document starts at the first token of the split's stream and right after each
-        end-of-document token; positions index the window's input ``x = w[:-1]``.
-        """
-        length = self.definition.pack.length
-        carry = eod_id  # the stream's first token starts a document
-        entries: dict[str, dict[str, Any]] = {}
-        for name in files:
-            windows = read_shard(folder / name, check_hash=False)
-            previous_last = (
-                np.concatenate(([carry], windows[:-1, length - 1])) if len(windows) else np.zeros(0)
-            )
-            first = np.flatnonzero(previous_last == eod_id)
-            rows, columns = np.nonzero(windows[:, : length - 1] == eod_id)
-            starts = np.concatenate(
-                [np.stack([first, np.zeros_like(first)], axis=1), np.stack([rows, columns + 1], axis=1)]
-            ).astype("<i4")
-            starts = starts[np.lexsort((starts[:, 1], starts[:, 0]))] if len(starts) else starts.reshape(0, 2)
-            if len(windows):
-                carry = int(windows[-1, length - 1])
-            target = folder / name.replace(".npy", ".starts.npy")
-            data = npy_header(starts.dtype, starts.shape) + np.ascontiguousarray(starts).tobytes()
-            temporary = target.with_name(f".{target.name}.partial")
-            temporary.write_bytes(data)
-            temporary.replace(target)
-            entries[name] = {
-                "file": f"{SHARD_FOLDER}/{target.name}",
-                "count": len(starts),
-                "bytes": len(data),
-                "xxh3_128": hash_bytes(data),
-            }
-        return entries
-
     def pack_train(self) -> None:
         self._pack(SPLITS[0])
 
@@ -555,8 +434,12 @@ class _Run:
         )
         del tokens
         starts = (
-            self._document_starts(
-                shard_folder, [shard.file for shard in result.shards], specials["end_of_document"]
+            write_document_starts(
+                shard_folder,
+                [shard.file for shard in result.shards],
+                length=config.length,
+                eod_id=specials["end_of_document"],
+                prefix=f"{SHARD_FOLDER}/",
             )
             if config.document_starts
             else {}
@@ -726,7 +609,7 @@ def run_pipeline(
         )
     if not definition.input.is_dir():
         raise InputError(f"{definition.input}: the input folder does not exist or is not a folder")
-    _check_output(definition.output, force)
+    check_output_folder(definition.output, force)
     run = _Run(definition, mapper or local_mapper(workers), progress)
     keys = step_keys(definition.resolved(), input_fingerprint(definition.input), __version__)
     resume = run.checkpoints.resume_point(keys) if run.partial.exists() else None
@@ -750,7 +633,7 @@ def run_pipeline(
         manifest = run.manifest(ledger, signatures)
         shutil.rmtree(run.work)
         write_json_atomic(run.partial / MANIFEST_FILE, manifest)
-        _publish(run.partial, run.output)
+        publish_folder(run.partial, run.output)
     except KeyboardInterrupt:
         raise  # keep the partial folder: the next run resumes from its last checkpoint
     except BaseException:
