@@ -12,7 +12,6 @@ import builtins
 import json
 import os
 import shutil
-import sys
 from pathlib import Path
 from typing import Any
 
@@ -24,30 +23,10 @@ from typer.testing import CliRunner
 
 from corpusprep.audit import AuditConfig, audit_output
 from corpusprep.cli import EXIT_DAMAGED, EXIT_OK, EXIT_USAGE, app
-from corpusprep.definition import load_definition
-from corpusprep.pipeline import run_pipeline
 
 ROOT = Path(__file__).parent.parent
-sys.path.insert(0, str(ROOT / "fixtures"))
-import make_ferry_archive  # noqa: E402
 
 FAST = AuditConfig(skip_ngrams=True)
-
-
-@pytest.fixture(scope="module")
-def demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    archive = tmp_path_factory.mktemp("ferry") / "ferry"
-    make_ferry_archive.build(archive)
-    output = tmp_path_factory.mktemp("runs") / "demo"
-    run_pipeline(load_definition(ROOT / "pipelines" / "demo.toml").with_folders(input=archive, output=output))
-    return output
-
-
-@pytest.fixture()
-def copy(demo: Path, tmp_path: Path) -> Path:
-    target = tmp_path / "out"
-    shutil.copytree(demo, target)
-    return target
 
 
 def _manifest(folder: Path) -> dict[str, Any]:

@@ -15,8 +15,6 @@ The 13-gram rule is Brown et al. 2020 App. C, quoted from memory (REFERENCES §3
 from __future__ import annotations
 
 import json
-import shutil
-import sys
 import unicodedata
 from pathlib import Path
 from typing import Any
@@ -24,44 +22,23 @@ from typing import Any
 import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
-import pytest
 import xxhash
 from tokenizers import Tokenizer
 from typer.testing import CliRunner
 
 from corpusprep.audit import AuditConfig, audit_output
 from corpusprep.cli import EXIT_LEAKAGE, app
-from corpusprep.definition import load_definition
 from corpusprep.ledger import LEDGER_SCHEMA
 from corpusprep.minhash import MultiplyShift, signature_matrix
 from corpusprep.near import NearConfig, document_shingles
 from corpusprep.pack import PackConfig, document_order, pack_split
-from corpusprep.pipeline import run_pipeline
 
 ROOT = Path(__file__).parent.parent
-sys.path.insert(0, str(ROOT / "fixtures"))
-import make_ferry_archive  # noqa: E402
 
 INVENTED = [
     *["quillon", "marrow", "sextant", "larch", "pumice", "vellum", "cobalt", "tinder", "saffron", "garnet"],
     *["wicker", "ember", "thistle", "bramble", "quartz", "willow", "cinder", "juniper", "hazel", "sorrel"],
 ]
-
-
-@pytest.fixture(scope="module")
-def demo(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    archive = tmp_path_factory.mktemp("ferry") / "ferry"
-    make_ferry_archive.build(archive)
-    output = tmp_path_factory.mktemp("runs") / "demo"
-    run_pipeline(load_definition(ROOT / "pipelines" / "demo.toml").with_folders(input=archive, output=output))
-    return output
-
-
-@pytest.fixture()
-def copy(demo: Path, tmp_path: Path) -> Path:
-    target = tmp_path / "out"
-    shutil.copytree(demo, target)
-    return target
 
 
 # ----------------------------------------------------------------------------- resealing helper

@@ -18,7 +18,6 @@ from __future__ import annotations
 import os
 import shutil
 import signal
-import sys
 from collections.abc import Callable, Iterable, Iterator
 from pathlib import Path
 from typing import Any
@@ -42,8 +41,6 @@ from corpusprep.pipeline import run_pipeline
 from corpusprep.pool import Mapper
 
 ROOT = Path(__file__).parent.parent
-sys.path.insert(0, str(ROOT / "fixtures"))
-import make_ferry_archive  # noqa: E402
 
 DEMO = ROOT / "pipelines" / "demo.toml"
 BENCH = ROOT / "bench" / "bench.toml"
@@ -75,17 +72,8 @@ def client() -> Iterator[Client]:
 
 
 @pytest.fixture(scope="module")
-def archive(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    folder = tmp_path_factory.mktemp("ferry") / "ferry"
-    make_ferry_archive.build(folder)
-    return folder
-
-
-@pytest.fixture(scope="module")
-def demo_reference(archive: Path, tmp_path_factory: pytest.TempPathFactory) -> dict[str, bytes]:
-    output = tmp_path_factory.mktemp("local") / "demo"
-    run_pipeline(load_definition(DEMO).with_folders(input=archive, output=output), workers=1)
-    return _tree_bytes(output)
+def demo_reference(demo_output: Path) -> dict[str, bytes]:
+    return _tree_bytes(demo_output)
 
 
 @pytest.fixture(scope="module")

@@ -19,26 +19,12 @@ from tokenizers import Tokenizer, models
 from typer.testing import CliRunner
 
 from corpusprep.cli import EXIT_OK, EXIT_USAGE, app
-from corpusprep.definition import load_definition
-from corpusprep.pipeline import run_pipeline
 
 ROOT = Path(__file__).parent.parent
-sys.path.insert(0, str(ROOT / "fixtures"))
 sys.path.insert(0, str(ROOT / "tests"))
-import make_ferry_archive  # noqa: E402
 from test_windows import build_output  # noqa: E402
 
 runner = CliRunner()
-
-
-@pytest.fixture(scope="module")
-def demo_output(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    archive = tmp_path_factory.mktemp("ferry") / "ferry"
-    make_ferry_archive.build(archive)
-    output = tmp_path_factory.mktemp("runs") / "demo"
-    definition = load_definition(ROOT / "pipelines" / "demo.toml").with_folders(input=archive, output=output)
-    run_pipeline(definition, workers=1)
-    return output
 
 
 def _manifest(output: Path) -> dict[str, Any]:

@@ -13,7 +13,6 @@ from __future__ import annotations
 import ast
 import json
 import struct
-import sys
 from collections import Counter
 from pathlib import Path
 from typing import Any
@@ -28,29 +27,12 @@ from corpusprep.errors import OutputExistsError, TooManyRejectedError
 from corpusprep.pipeline import run_pipeline
 
 ROOT = Path(__file__).parent.parent
-sys.path.insert(0, str(ROOT / "fixtures"))
-import make_ferry_archive  # noqa: E402
 
 DEMO = ROOT / "pipelines" / "demo.toml"
 
 
 def _tree_bytes(folder: Path) -> dict[str, bytes]:
     return {str(p.relative_to(folder)): p.read_bytes() for p in sorted(folder.rglob("*")) if p.is_file()}
-
-
-@pytest.fixture(scope="session")
-def archive(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    folder = tmp_path_factory.mktemp("ferry") / "ferry"
-    make_ferry_archive.build(folder)
-    return folder
-
-
-@pytest.fixture(scope="session")
-def demo_output(archive: Path, tmp_path_factory: pytest.TempPathFactory) -> Path:
-    output = tmp_path_factory.mktemp("runs") / "demo"
-    definition = load_definition(DEMO).with_folders(input=archive, output=output)
-    run_pipeline(definition, workers=1)
-    return output
 
 
 def _manifest(output: Path) -> dict[str, Any]:

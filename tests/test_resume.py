@@ -22,8 +22,6 @@ from corpusprep.definition import load_definition
 from corpusprep.pipeline import run_pipeline
 
 ROOT = Path(__file__).parent.parent
-sys.path.insert(0, str(ROOT / "fixtures"))
-import make_ferry_archive  # noqa: E402
 
 DEMO = ROOT / "pipelines" / "demo.toml"
 
@@ -33,17 +31,8 @@ def _tree(folder: Path) -> dict[str, bytes]:
 
 
 @pytest.fixture(scope="module")
-def archive(tmp_path_factory: pytest.TempPathFactory) -> Path:
-    folder = tmp_path_factory.mktemp("ferry") / "ferry"
-    make_ferry_archive.build(folder)
-    return folder
-
-
-@pytest.fixture(scope="module")
-def reference(archive: Path, tmp_path_factory: pytest.TempPathFactory) -> dict[str, bytes]:
-    output = tmp_path_factory.mktemp("reference") / "out"
-    run_pipeline(load_definition(DEMO).with_folders(input=archive, output=output), workers=1)
-    return _tree(output)
+def reference(demo_output: Path) -> dict[str, bytes]:
+    return _tree(demo_output)
 
 
 def _command(archive: Path, output: Path) -> list[str]:
