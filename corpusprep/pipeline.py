@@ -332,19 +332,22 @@ class _Run:
         }
 
     # ------------------------------------------------------------------ pass 2
-    def _train_texts(self) -> Iterator[str]:
-        """The cleaned texts of the train split's kept documents, in ledger order, streamed."""
+    def _staged_texts(self, wanted: Callable[[str | None], bool]) -> Iterator[tuple[list[int], list[str]]]:
+        """Per staged batch: the rows whose split passes ``wanted``, and their cleaned texts."""
         start = 0
         with pa.memory_map(str(self.work / "documents.arrow")) as source:
             reader = pa.ipc.open_file(source)
             for index in range(reader.num_record_batches):
                 batch = reader.get_batch(index)
-                rows = [i for i in range(batch.num_rows) if self.split_of[start + i] == SPLITS[0]]
+                rows = [start + i for i in range(batch.num_rows) if wanted(self.split_of[start + i])]
+                texts = batch.column("text").take(pa.array([r - start for r in rows], type=pa.int64()))
                 start += batch.num_rows
-                if rows:
-                    yield from (
-                        str(t) for t in batch.column("text").take(pa.array(rows, type=pa.int64())).to_pylist()
-                    )
+                yield rows, [str(text) for text in texts.to_pylist()]
+
+    def _train_texts(self) -> Iterator[str]:
+        """The cleaned texts of the train split's kept documents, in ledger order, streamed."""
+        for _, texts in self._staged_texts(lambda split: split == SPLITS[0]):
+            yield from texts
 
     def tokenize_step(self) -> None:
         definition = self.definition
@@ -358,16 +361,9 @@ class _Run:
         row_lists: list[list[int]] = []
 
         def kept_texts() -> Iterator[list[str]]:
-            start = 0
-            with pa.memory_map(str(self.work / "documents.arrow")) as source:
-                reader = pa.ipc.open_file(source)
-                for index in range(reader.num_record_batches):
-                    batch = reader.get_batch(index)
-                    rows = [start + i for i in range(batch.num_rows) if self.split_of[start + i] is not None]
-                    texts = batch.column("text").take(pa.array([r - start for r in rows], type=pa.int64()))
-                    row_lists.append(rows)
-                    start += batch.num_rows
-                    yield [str(text) for text in texts.to_pylist()]
+            for rows, texts in self._staged_texts(lambda split: split is not None):
+                row_lists.append(rows)
+                yield texts
 
         with contextlib.ExitStack() as stack:
             files = {
