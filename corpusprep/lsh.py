@@ -42,10 +42,14 @@ import numpy as np
 from corpusprep.minhash import EMPTY_VALUE
 
 __all__ = [
+    "band_codes",
     "band_keys",
     "candidate_pairs",
     "candidate_probability",
+    "check_banding",
     "choose_bands",
+    "codes_to_pairs",
+    "nonempty_rows",
     "weighted_error",
 ]
 
@@ -194,17 +198,38 @@ def _run_pairs(order: np.ndarray, sorted_keys: np.ndarray, bucket_limit: int) ->
     return np.unique(np.concatenate(codes))
 
 
-def candidate_pairs(
-    signatures: np.ndarray, bands: int, rows: int, *, bucket_limit: int = 64, chunk_rows: int = 65536
-) -> np.ndarray:
-    """Candidate pairs of a signature store, shape (m, 2), ``int64``, ``i < j``, sorted, distinct.
+def nonempty_rows(signatures: np.ndarray, *, chunk_rows: int = 65536) -> np.ndarray:
+    """Row numbers of the signatures that are not empty (all :data:`EMPTY_VALUE`), ascending."""
+    parts = []
+    for begin in range(0, signatures.shape[0], chunk_rows):
+        block = np.asarray(signatures[begin : begin + chunk_rows])
+        parts.append(np.flatnonzero(~np.all(block == EMPTY_VALUE, axis=1)) + begin)
+    return np.concatenate(parts) if parts else np.empty(0, dtype=np.int64)
 
-    ``signatures`` may be a ``np.memmap``; it is read one band and ``chunk_rows``
-    rows at a time, so besides the store only about 24 bytes per document (one
-    band's keys, the sort order and the non-empty index) live at once, plus
-    the pairs found.
-    """
-    count, width = signatures.shape
+
+def band_codes(
+    signatures: np.ndarray,
+    band: int,
+    rows: int,
+    nonempty: np.ndarray,
+    *,
+    bucket_limit: int = 64,
+    chunk_rows: int = 65536,
+) -> np.ndarray:
+    """Sorted distinct pair codes ``i << 32 | j`` of one band (rows ``nonempty`` only)."""
+    count = signatures.shape[0]
+    keys = np.empty(count, dtype=np.uint64)
+    for begin in range(0, count, chunk_rows):
+        block = np.asarray(signatures[begin : begin + chunk_rows, band * rows : (band + 1) * rows])
+        keys[begin : begin + block.shape[0]] = band_keys(block, band)
+    keys = keys[nonempty]
+    order = np.argsort(keys, kind="stable")
+    return _run_pairs(nonempty[order], keys[order], bucket_limit)
+
+
+def check_banding(shape: tuple[int, ...], bands: int, rows: int, bucket_limit: int) -> None:
+    """Refuse a banding that does not fit a signature store of ``shape``."""
+    count, width = shape
     if bands * rows > width:
         raise ValueError(
             f"bands * rows = {bands} * {rows} = {bands * rows} exceeds the signature length {width}"
@@ -213,22 +238,32 @@ def candidate_pairs(
         raise ValueError(f"bucket_limit = {bucket_limit}: must be at least 2")
     if count >= 1 << 32:
         raise ValueError(f"{count} documents: at most 2^32 - 1 are supported")
-    nonempty_parts = []
-    for begin in range(0, count, chunk_rows):
-        block = np.asarray(signatures[begin : begin + chunk_rows])
-        nonempty_parts.append(np.flatnonzero(~np.all(block == EMPTY_VALUE, axis=1)) + begin)
-    nonempty = np.concatenate(nonempty_parts) if nonempty_parts else np.empty(0, dtype=np.int64)
+
+
+def codes_to_pairs(codes: np.ndarray) -> np.ndarray:
+    """Pair codes ``i << 32 | j`` as an ``(m, 2)`` ``int64`` array of ``(i, j)``."""
+    pairs = np.empty((codes.size, 2), dtype=np.int64)
+    pairs[:, 0] = (codes >> np.uint64(32)).astype(np.int64)
+    pairs[:, 1] = (codes & np.uint64(0xFFFFFFFF)).astype(np.int64)
+    return pairs
+
+
+def candidate_pairs(
+    signatures: np.ndarray, bands: int, rows: int, *, bucket_limit: int = 64, chunk_rows: int = 65536
+) -> np.ndarray:
+    """Candidate pairs of a signature store, shape (m, 2), ``int64``, ``i < j``, sorted, distinct.
+
+    ``signatures`` may be a ``np.memmap``; it is read one band and ``chunk_rows``
+    rows at a time, so besides the store only about 24 bytes per document (one
+    band's keys, the sort order and the non-empty index) live at once, plus
+    the pairs found. The bands are independent: :func:`band_codes` of any
+    subset of them, merged with ``np.unique``, give the same pairs (that is how
+    :mod:`corpusprep.barriers` spreads them over workers).
+    """
+    check_banding(signatures.shape, bands, rows, bucket_limit)
+    nonempty = nonempty_rows(signatures, chunk_rows=chunk_rows)
     found = np.empty(0, dtype=np.uint64)
     for band in range(bands):
-        keys = np.empty(count, dtype=np.uint64)
-        for begin in range(0, count, chunk_rows):
-            block = np.asarray(signatures[begin : begin + chunk_rows, band * rows : (band + 1) * rows])
-            keys[begin : begin + block.shape[0]] = band_keys(block, band)
-        keys = keys[nonempty]
-        order = np.argsort(keys, kind="stable")
-        codes = _run_pairs(nonempty[order], keys[order], bucket_limit)
+        codes = band_codes(signatures, band, rows, nonempty, bucket_limit=bucket_limit, chunk_rows=chunk_rows)
         found = np.union1d(found, codes)
-    pairs = np.empty((found.size, 2), dtype=np.int64)
-    pairs[:, 0] = (found >> np.uint64(32)).astype(np.int64)
-    pairs[:, 1] = (found & np.uint64(0xFFFFFFFF)).astype(np.int64)
-    return pairs
+    return codes_to_pairs(found)

@@ -54,6 +54,7 @@ import dataclasses
 import math
 from collections import OrderedDict
 from collections.abc import Callable
+from typing import Protocol
 
 import numpy as np
 import pyarrow as pa
@@ -71,7 +72,9 @@ __all__ = [
     "VERIFY_MODES",
     "NearConfig",
     "NearResult",
+    "PairWork",
     "document_shingles",
+    "exact_similarity",
     "find_clusters",
     "mark_near_copies",
     "resolve_bands",
@@ -283,7 +286,7 @@ class _UnionFind:
 _SHINGLE_CACHE_DOCUMENTS = 2048
 
 
-def _exact_similarity(pairs: np.ndarray, shingles_of: Callable[[int], np.ndarray]) -> np.ndarray:
+def exact_similarity(pairs: np.ndarray, shingles_of: Callable[[int], np.ndarray]) -> np.ndarray:
     """Exact Jaccard of each pair.
 
     Shingle sets are kept in a small least-recently-used cache (at most
@@ -308,36 +311,78 @@ def _exact_similarity(pairs: np.ndarray, shingles_of: Callable[[int], np.ndarray
     return out
 
 
+class PairWork(Protocol):
+    """Where the pair work of :func:`find_clusters` runs: candidates and similarities of pairs.
+
+    Each method must give exactly what the in-process default gives
+    (:func:`corpusprep.lsh.candidate_pairs`, :func:`corpusprep.minhash.pair_similarity`
+    and the exact Jaccard of shingle sets), whatever it runs on;
+    :mod:`corpusprep.barriers` spreads them over an engine's workers.
+    """
+
+    def candidates(self, bands: int, rows: int, bucket_limit: int) -> np.ndarray:
+        """Candidate pairs (m, 2), ``i < j``, sorted, distinct."""
+        ...
+
+    def estimates(self, pairs: np.ndarray) -> np.ndarray:
+        """Signature estimate of each pair."""
+        ...
+
+    def exact(self, pairs: np.ndarray) -> np.ndarray:
+        """Exact Jaccard similarity of the shingle sets of each pair."""
+        ...
+
+
+@dataclasses.dataclass(frozen=True, slots=True)
+class _InlineWork:
+    signatures: np.ndarray
+    shingles_of: Callable[[int], np.ndarray] | None
+
+    def candidates(self, bands: int, rows: int, bucket_limit: int) -> np.ndarray:
+        return candidate_pairs(self.signatures, bands, rows, bucket_limit=bucket_limit)
+
+    def estimates(self, pairs: np.ndarray) -> np.ndarray:
+        return pair_similarity(self.signatures, pairs[:, 0], pairs[:, 1])
+
+    def exact(self, pairs: np.ndarray) -> np.ndarray:
+        assert self.shingles_of is not None
+        return exact_similarity(pairs, self.shingles_of)
+
+
 def find_clusters(
     signatures: np.ndarray,
     config: NearConfig,
     *,
     shingles_of: Callable[[int], np.ndarray] | None = None,
+    work: PairWork | None = None,
 ) -> NearResult:
     """The clustering barrier: candidates, verification, union-find, per-document result.
 
     ``signatures`` is the (documents, permutations) ``uint32`` store (array or
     ``np.memmap``); it is read band by band and pair by pair, never copied
-    whole. ``shingles_of(i)`` must be given when ``verify = "exact"``.
+    whole. ``shingles_of(i)`` must be given when ``verify = "exact"``, unless
+    ``work`` is given: then the candidates and similarities come from it (for
+    instance from an engine's workers), and only the union-find and the
+    per-document result are computed here.
     """
     if signatures.ndim != 2 or signatures.shape[1] != config.permutations:
         raise ValueError(
             f"signatures of shape {signatures.shape} do not match near.permutations = {config.permutations}"
         )
-    if config.verify == "exact" and shingles_of is None:
+    if config.verify == "exact" and shingles_of is None and work is None:
         raise ValueError("near.verify = 'exact' needs shingles_of, the shingle keys of document i")
     count = signatures.shape[0]
     bands, rows = resolve_bands(config)
-    candidates = candidate_pairs(signatures, bands, rows, bucket_limit=config.bucket_limit)
-    estimate = pair_similarity(signatures, candidates[:, 0], candidates[:, 1])
+    work = work or _InlineWork(signatures, shingles_of)
+    candidates = work.candidates(bands, rows, config.bucket_limit)
+    estimate = work.estimates(candidates)
     if config.verify == "signature":
         verified = candidates[estimate >= config.threshold]
     else:
-        assert shingles_of is not None
         margin = 4.0 * math.sqrt(config.threshold * (1.0 - config.threshold) / config.permutations)
         sure = estimate >= config.threshold + margin
         unsure = candidates[(estimate >= config.threshold - margin) & ~sure]
-        checked = unsure[_exact_similarity(unsure, shingles_of) >= config.threshold]
+        checked = unsure[work.exact(unsure) >= config.threshold]
         verified = np.concatenate([candidates[sure], checked]) if checked.size else candidates[sure]
         verified = verified[np.lexsort((verified[:, 1], verified[:, 0]))] if verified.size else verified
 
@@ -352,10 +397,9 @@ def find_clusters(
     copy_index = indices[copies]
     to_representative = np.stack([cluster[copies], copy_index], axis=1)
     if config.verify == "signature":
-        similarity[copy_index] = pair_similarity(signatures, to_representative[:, 0], to_representative[:, 1])
+        similarity[copy_index] = work.estimates(to_representative)
     elif copy_index.size:
-        assert shingles_of is not None
-        similarity[copy_index] = _exact_similarity(to_representative, shingles_of)
+        similarity[copy_index] = work.exact(to_representative)
 
     sizes = np.bincount(cluster, minlength=count) if count else np.empty(0, dtype=np.int64)
     grouped = sizes[sizes >= 2]

@@ -29,17 +29,17 @@ import numpy as np
 import pyarrow as pa
 
 from corpusprep import __version__
+from corpusprep.barriers import MappedPairWork, SignatureStore, first_occurrences_mapped
 from corpusprep.batchwork import bounded_slices, encode_texts, hex_pair, prepare_batch
 from corpusprep.checkpoint import Checkpoints, input_fingerprint, step_keys
 from corpusprep.definition import Definition
 from corpusprep.errors import InputError, IntegrityError, TooManyRejectedError
-from corpusprep.exact import first_occurrences
 from corpusprep.hashing import hash_file, hash_text
 from corpusprep.ledger import LEDGER_FILE, write_ledger
 from corpusprep.manifest import MANIFEST_FILE, SCHEMA_VERSION, write_json_atomic
-from corpusprep.near import document_shingles, find_clusters
+from corpusprep.near import find_clusters
 from corpusprep.pack import document_order, pack_split, smallest_dtype, write_document_starts
-from corpusprep.pool import Mapper, local_mapper
+from corpusprep.pool import Mapper, local_engine
 from corpusprep.publish import check_output_folder, publish_folder
 from corpusprep.read import InputFile, read_folder
 from corpusprep.schema import DOC_SCHEMA, EMPTY, EXACT_COPY, KEPT, NEAR_COPY, REJECTED, STATUSES
@@ -236,7 +236,7 @@ class _Run:
         self.duplicate_of = np.full(self.rows, -1, dtype=np.int64)
         copies = 0
         if self.definition.exact.enabled:
-            first = first_occurrences(self.keys, self.status == _STATUS_CODE[KEPT])
+            first = first_occurrences_mapped(self.keys, self.status == _STATUS_CODE[KEPT], self.mapper)
             is_copy = first >= 0
             self.status[is_copy] = _STATUS_CODE[EXACT_COPY]
             self.duplicate_of[is_copy] = first[is_copy]
@@ -253,15 +253,16 @@ class _Run:
             return
         kept = np.flatnonzero(self.status == _STATUS_CODE[KEPT])
         signatures = self._compact_signatures(kept)
-        with pa.memory_map(str(self.work / "documents.arrow")) as source:
-            texts = pa.ipc.open_file(source).read_all().column("text")
-
-            def shingles_of(index: int) -> np.ndarray:
-                return document_shingles(texts[int(kept[index])].as_py() or "", near)
-
-            result = find_clusters(
-                signatures, near, shingles_of=shingles_of if near.verify == "exact" else None
-            )
+        store = SignatureStore(
+            path=str(self.work / "signatures-kept.raw"),
+            dtype=self.signature_dtype.str,
+            documents=len(kept),
+            permutations=self.permutations,
+        )
+        work = MappedPairWork(
+            self.mapper, store, documents=str(self.work / "documents.arrow"), rows=kept, config=near
+        )
+        result = find_clusters(signatures, near, work=work)
         del signatures
         sizes = np.bincount(result.cluster, minlength=len(kept)) if len(kept) else np.zeros(0, np.int64)
         members = np.flatnonzero(sizes[result.cluster] > 1) if len(kept) else np.zeros(0, np.int64)
@@ -606,7 +607,15 @@ def run_pipeline(
     if not definition.input.is_dir():
         raise InputError(f"{definition.input}: the input folder does not exist or is not a folder")
     check_output_folder(definition.output, force)
-    run = _Run(definition, mapper or local_mapper(workers), progress)
+    with contextlib.ExitStack() as engine:
+        if mapper is None:
+            mapper = engine.enter_context(local_engine(workers))
+        return _run_steps(definition, mapper, progress)
+
+
+def _run_steps(definition: Definition, mapper: Mapper, progress: ProgressCallback | None) -> RunResult:
+    assert definition.input is not None
+    run = _Run(definition, mapper, progress)
     keys = step_keys(definition.resolved(), input_fingerprint(definition.input), __version__)
     resume = run.checkpoints.resume_point(keys) if run.partial.exists() else None
     if resume is None and run.partial.exists():

@@ -6,21 +6,25 @@ same output bytes for any worker count. At most ``workers * 2`` batches are
 in flight, so memory stays bounded by the batch size, not the corpus.
 
 Worker processes are started with the ``spawn`` method: the parent may hold
-threads (Arrow's pool), and forking a threaded process is unsafe.
+threads (Arrow's pool), and forking a threaded process is unsafe. Starting one
+costs a fresh interpreter and its imports (about a second), so a run keeps one
+pool for all its steps: :func:`local_engine` holds it, and every map of the
+run (first pass, duplicate partitions, LSH bands, encoding, shards) uses it.
 """
 
 from __future__ import annotations
 
+import contextlib
 import multiprocessing
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
-from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures import Executor, Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from typing import Any, TypeVar
 
 from corpusprep.errors import WorkerDiedError
 
-__all__ = ["Mapper", "local_mapper", "ordered_map"]
+__all__ = ["Mapper", "local_engine", "local_mapper", "ordered_map"]
 
 In = TypeVar("In")
 Out = TypeVar("Out")
@@ -34,7 +38,8 @@ def ordered_map(function: Callable[[In], Out], items: Iterable[In], *, workers: 
     """``map(function, items)`` on ``workers`` processes, results in input order.
 
     ``function`` must be picklable (a module-level function or a
-    ``functools.partial`` of one). With ``workers <= 1`` it runs inline.
+    ``functools.partial`` of one). With ``workers <= 1`` it runs inline. A new
+    pool is started for this one map; :func:`local_engine` keeps one for many.
 
     >>> list(ordered_map(abs, [-3, 1, -2], workers=1))
     [3, 1, 2]
@@ -44,31 +49,56 @@ def ordered_map(function: Callable[[In], Out], items: Iterable[In], *, workers: 
         return
     context = multiprocessing.get_context("spawn")
     with ProcessPoolExecutor(max_workers=workers, mp_context=context) as executor:
-        pending: deque[Future[Out]] = deque()
-        done = 0
-        try:
-            for item in items:
-                pending.append(executor.submit(function, item))
-                if len(pending) >= workers * 2:
-                    yield pending.popleft().result()
-                    done += 1
-            while pending:
+        yield from _executor_map(executor, function, items, workers)
+
+
+def _executor_map(
+    executor: Executor, function: Callable[[In], Out], items: Iterable[In], workers: int
+) -> Iterator[Out]:
+    pending: deque[Future[Out]] = deque()
+    done = 0
+    try:
+        for item in items:
+            pending.append(executor.submit(function, item))
+            if len(pending) >= workers * 2:
                 yield pending.popleft().result()
                 done += 1
-        except BrokenProcessPool:
-            raise WorkerDiedError(
-                f"a worker process ended abruptly (killed, or out of memory) while batch {done + 1} "
-                "was being processed; nothing was published. Run again, perhaps with fewer --workers."
-            ) from None
-        finally:
-            for future in pending:
-                future.cancel()
+        while pending:
+            yield pending.popleft().result()
+            done += 1
+    except BrokenProcessPool:
+        raise WorkerDiedError(
+            f"a worker process ended abruptly (killed, or out of memory) while batch {done + 1} "
+            "was being processed; nothing was published. Run again, perhaps with fewer --workers."
+        ) from None
+    finally:
+        for future in pending:
+            future.cancel()
 
 
 def local_mapper(workers: int) -> Mapper:
-    """The local engine: :func:`ordered_map` on ``workers`` processes."""
+    """The local engine for one map at a time: :func:`ordered_map` on ``workers`` processes."""
 
     def mapper(function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
         return ordered_map(function, items, workers=workers)
 
     return mapper
+
+
+@contextlib.contextmanager
+def local_engine(workers: int) -> Iterator[Mapper]:
+    """The local engine for a whole run: one pool of ``workers`` processes serves every map.
+
+    With ``workers <= 1`` every map runs inline and no process is started. The
+    processes start on the first task and stop when the block ends.
+    """
+    if workers <= 1:
+        yield local_mapper(1)
+        return
+    context = multiprocessing.get_context("spawn")
+    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as executor:
+
+        def mapper(function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
+            return _executor_map(executor, function, items, workers)
+
+        yield mapper
