@@ -48,6 +48,7 @@ vocabulary with an unknown token cannot give back every character).
 from __future__ import annotations
 
 import html
+import itertools
 import json
 import os
 from collections.abc import Iterator, Mapping, Sequence
@@ -57,7 +58,6 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.compute as pc
 
 from corpusprep.errors import CorpusprepError
 from corpusprep.manifest import MANIFEST_FILE, read_manifest
@@ -98,8 +98,8 @@ class ReportConfig:
     """Characters of a representative's decoded text shown."""
     input_rows: int = 500
     """Most input files listed (in manifest order); the manifest lists them all."""
-    chunk_rows: int = 4096
-    """Windows read per step when counting token ids in the shards."""
+    chunk_rows: int = 1024
+    """Windows counted per step in the shards (about a million tokens: the block's copy stays small)."""
     audit: Path | None = None
     """An audit result (``corpusprep audit OUTPUT --json``); None looks beside and inside the output."""
 
@@ -152,25 +152,36 @@ def _special_ids(manifest: Mapping[str, Any]) -> dict[str, int]:
     return {role: int(specials[role]["id"]) for role in _SPECIAL_ROLES if role in specials}
 
 
-def token_frequencies(folder: Path, split: str, *, chunk_rows: int = 4096) -> np.ndarray:
+def token_frequencies(folder: Path, split: str, *, chunk_rows: int = 1024) -> np.ndarray:
     """How often each token id occurs in the token stream of ``split``, special tokens set to zero.
 
-    Every stream token is counted once: the first ``length`` columns of each
-    window, plus the last column of the last window (consecutive windows
-    share one token). The shards are memory-mapped and read ``chunk_rows``
-    windows at a time.
+    Every stream token is counted once. Window ``i`` holds stream tokens
+    ``i * length .. i * length + length``, so its last column is the first
+    column of the next window: all columns of every window are counted (each
+    block of ``chunk_rows`` contiguous windows in one ``np.bincount`` over the
+    memory-mapped shard, no copy of the block), then the first column of every
+    window but the split's first is taken off again.
     """
-    manifest = read_manifest(folder)
-    length = int(manifest["windows"]["length"])
+    return _frequencies(folder, read_manifest(folder), split, chunk_rows)
+
+
+def _frequencies(folder: Path, manifest: Mapping[str, Any], split: str, chunk_rows: int) -> np.ndarray:
     vocab = int(manifest["tokenizer"]["vocab_size"])
+    windows = manifest["windows"]
+    length = int(windows["length"])
+    if int(windows["stored_length"]) != length + 1 or int(windows.get("stride", length)) != length:
+        raise ReportError(
+            f"{folder / MANIFEST_FILE}: windows.stored_length {windows['stored_length']} and stride "
+            f"{windows.get('stride')}: expected length + 1 and length (consecutive windows share one token)"
+        )
     counts = np.zeros(vocab, dtype=np.int64)
     shards = _split_shards(folder, manifest, split)
-    for shard in shards:
+    for number, shard in enumerate(shards):
         for start in range(0, len(shard), chunk_rows):
-            block = np.asarray(shard[start : start + chunk_rows, :length]).ravel()
-            counts += np.bincount(block, minlength=vocab)[:vocab]
-    if shards and len(shards[-1]):
-        counts[int(shards[-1][-1, length])] += 1
+            block = shard[start : start + chunk_rows]
+            counts += np.bincount(block.reshape(-1), minlength=vocab)[:vocab]
+            shared = block[1:, 0] if number == 0 and start == 0 else block[:, 0]
+            counts -= np.bincount(shared, minlength=vocab)[:vocab]
     for token in _special_ids(manifest).values():
         if token < vocab:
             counts[token] = 0
@@ -212,12 +223,98 @@ class _Excerpt:
     note: str
 
 
-def _column(table: pa.Table, name: str) -> np.ndarray:
-    return np.asarray(table.column(name).to_numpy(zero_copy_only=False))
+def _bits(buffer: Any, offset: int, count: int) -> np.ndarray:
+    """An Arrow bitmap (validity or boolean values) as a NumPy bool array."""
+    bytes_ = np.frombuffer(buffer, np.uint8)
+    return np.unpackbits(bytes_, bitorder="little")[offset : offset + count].astype(bool)
+
+
+class _Ledger:
+    """The ledger columns the page uses, as NumPy arrays.
+
+    Read straight from the Arrow buffers: pyarrow's own conversions (``to_numpy``,
+    ``pa.scalar``, compute calls on Python values) import pandas on first use,
+    which took longer than reading the whole output. String columns with few
+    distinct values are read dictionary-encoded (a code per row); the others are
+    looked up one row at a time with :meth:`text`.
+    """
+
+    CODED = ("status", "reason", "cluster", "split")
+    COLUMNS = ("record_id", "source", "line", "text_hash", "similarity", "tokens", *CODED)
+
+    def __init__(self, path: Path) -> None:
+        import pyarrow.parquet as pq
+
+        try:
+            parquet = pq.ParquetFile(path, read_dictionary=list(self.CODED))
+        except (OSError, pa.ArrowException) as error:
+            raise ReportError(f"{path}: not a readable Parquet ledger ({error})") from None
+        missing = [name for name in self.COLUMNS if name not in parquet.schema_arrow.names]
+        if missing:
+            raise ReportError(f"{path}: the ledger has no column {', '.join(missing)}")
+        self.table = parquet.read(columns=list(self.COLUMNS)).unify_dictionaries()
+        self.rows = self.table.num_rows
+        self.codes: dict[str, np.ndarray] = {}
+        self.values: dict[str, list[str]] = {}
+        for name in self.CODED:
+            array = self.table.column(name).combine_chunks()
+            if not isinstance(array, pa.DictionaryArray):  # an empty table has no dictionary
+                array = array.dictionary_encode()
+            codes = self._numbers(array.indices, np.int64, -1).astype(np.int64)
+            self.codes[name] = codes
+            self.values[name] = [str(value) for value in array.dictionary.to_pylist()]
+        self.tokens = self._numbers(self.table.column("tokens").combine_chunks(), np.int64, 0)
+        similarity = self.table.column("similarity").combine_chunks()
+        self.similarity = self._numbers(similarity, np.float64, np.nan)
+        self.has_similarity = (
+            _bits(similarity.buffers()[0], similarity.offset, self.rows)
+            if similarity.null_count
+            else np.ones(self.rows, bool)
+        )
+
+    @staticmethod
+    def _numbers(array: Any, dtype: Any, missing: float) -> np.ndarray:
+        """A numeric Arrow array as NumPy, nulls replaced by ``missing``."""
+        count = len(array)
+        if not count:
+            return np.zeros(0, dtype)
+        validity, data = array.buffers()[:2]
+        kind = "f" if pa.types.is_floating(array.type) else "i"
+        stored = np.dtype(f"<{kind}{array.type.bit_width // 8}")
+        values = np.frombuffer(data, stored, count=count, offset=array.offset * stored.itemsize).astype(dtype)
+        if array.null_count:
+            values[~_bits(validity, array.offset, count)] = missing
+        return values
+
+    def mask(self, name: str, value: str) -> np.ndarray:
+        """Rows whose coded column ``name`` equals ``value`` (null is never equal)."""
+        values = self.values[name]
+        return self.codes[name] == values.index(value) if value in values else np.zeros(self.rows, bool)
+
+    def counts(self, name: str, rows: np.ndarray | None = None) -> dict[str, int]:
+        """Rows (of ``rows``, default all) holding each value of coded column ``name``; nulls left out."""
+        codes = self.codes[name] if rows is None else self.codes[name][rows]
+        counted = np.bincount(codes[codes >= 0], minlength=len(self.values[name]))
+        return {
+            value: int(count)
+            for value, count in zip(self.values[name], counted.tolist(), strict=True)
+            if count
+        }
+
+    def text(self, row: int, name: str) -> Any:
+        """The value of column ``name`` at ``row`` (a str, int or None)."""
+        return self.table.column(name)[row].as_py()
+
+    def row_of(self, record_id: str, among: np.ndarray) -> int:
+        """The row whose record_id is ``record_id``, looked for in ``among`` first, then everywhere."""
+        for row in itertools.chain(among.tolist(), range(self.rows)):
+            if self.text(row, "record_id") == record_id:
+                return int(row)
+        raise ReportError(f"ledger: no row has record_id {record_id!r}, which names a cluster")
 
 
 def _excerpts(
-    folder: Path, manifest: Mapping[str, Any], ledger: pa.Table, rows: Sequence[int], characters: int
+    folder: Path, manifest: Mapping[str, Any], ledger: _Ledger, rows: Sequence[int], characters: int
 ) -> dict[int, _Excerpt]:
     """Decoded text of the kept ledger ``rows``, recovered from the shards (module docstring)."""
     from tokenizers import Tokenizer
@@ -228,12 +325,11 @@ def _excerpts(
     length = int(manifest["windows"]["length"])
     seed = int(manifest["definition"]["pack"]["seed"])
     begin = "begin_of_document" in _special_ids(manifest)
-    status, split_of = _column(ledger, "status"), _column(ledger, "split")
-    tokens = np.nan_to_num(np.asarray(_column(ledger, "tokens"), dtype=np.float64)).astype(np.int64)
-    hashes = _column(ledger, "text_hash")
+    split_of = {row: str(ledger.text(row, "split")) for row in rows}
+    tokens = ledger.tokens
     result: dict[int, _Excerpt] = {}
-    for split in sorted({str(split_of[row]) for row in rows}):
-        members = np.flatnonzero((status == "kept") & (split_of == split))
+    for split in sorted(set(split_of.values())):
+        members = np.flatnonzero(ledger.mask("status", "kept") & ledger.mask("split", split))
         starts = _document_starts(tokens[members], seed, split, begin)
         shards = _split_shards(folder, manifest, split)
         for row in rows:
@@ -248,7 +344,7 @@ def _excerpts(
             if len(ids) < count:
                 cut = "the split's tail was dropped" if wanted == count else "the document is very long"
                 result[row] = _Excerpt(shown, None, f"not checked: {cut}")
-            elif hash_text(text) == hashes[row]:
+            elif hash_text(text) == ledger.text(row, "text_hash"):
                 result[row] = _Excerpt(shown, True, "decoded text hashes to the ledger's text_hash")
             else:
                 result[row] = _Excerpt(
@@ -264,7 +360,7 @@ class _Data:
     folder: Path
     name: str
     manifest: dict[str, Any]
-    ledger: pa.Table
+    ledger: _Ledger
     audit: dict[str, Any] | None
     audit_name: str
     audit_older: bool
@@ -284,18 +380,16 @@ def _read_audit(path: Path | None) -> dict[str, Any] | None:
 
 
 def _read(folder: Path, config: ReportConfig) -> _Data:
-    import pyarrow.parquet as pq
-
     if not (folder / MANIFEST_FILE).is_file():
         raise ReportError(f"{folder}: no {MANIFEST_FILE}; not a finished corpusprep output")
     manifest = read_manifest(folder)
-    ledger = pq.read_table(_member(folder, str(manifest["ledger"]["file"])))
+    ledger = _Ledger(_member(folder, str(manifest["ledger"]["file"])))
     audit_path = audit_result_path(folder, config.audit)
     older = bool(
         audit_path is not None and audit_path.stat().st_mtime < (folder / MANIFEST_FILE).stat().st_mtime
     )
     frequencies = {
-        split: token_frequencies(folder, split, chunk_rows=config.chunk_rows) for split in manifest["splits"]
+        split: _frequencies(folder, manifest, split, config.chunk_rows) for split in manifest["splits"]
     }
     return _Data(
         folder=folder,
@@ -349,9 +443,8 @@ def _fates(data: _Data) -> str:
     from corpusprep.report_figures import fates_figure
 
     ledger = data.ledger
-    counts = {str(k): int(v) for k, v in _value_counts(ledger.column("status")).items()}
-    rejected = ledger.filter(_equal(ledger, "status", "rejected"))
-    reasons = _reason_counts(rejected)
+    counts = ledger.counts("status")
+    reasons = _reason_counts(ledger, np.flatnonzero(ledger.mask("status", "rejected")))
     bars: list[tuple[str, str, int]] = [
         (status, status, counts.get(status, 0)) for status in _FATE_ORDER[:-1] if status in counts
     ]
@@ -370,7 +463,7 @@ def _fates(data: _Data) -> str:
     rows.append(
         [
             "<b>read</b>",
-            _v(ledger.num_rows, "ledger", "rows"),
+            _v(ledger.rows, "ledger", "rows"),
             _m(data.manifest["ledger"]["read"], "ledger.read"),
         ]
     )
@@ -381,31 +474,24 @@ def _fates(data: _Data) -> str:
     return _figure(fates_figure(bars), caption) + _table("fates", ["fate", "ledger rows", "manifest"], rows)
 
 
-def _value_counts(column: pa.ChunkedArray[Any]) -> dict[str, int]:
-    counted = pc.value_counts(column)
-    values, counts = counted.field("values").to_pylist(), counted.field("counts").to_pylist()
-    return {
-        str(value): int(count or 0) for value, count in zip(values, counts, strict=True) if value is not None
-    }
+def _reason_code(reason: str | None) -> str:
+    """The reason code of a ledger ``reason``: the part before the first colon ("" for none)."""
+    return str(reason or "").split(":")[0]
 
 
-def _equal(table: pa.Table, column: str, value: str) -> Any:
-    """Mask of the rows of ``table`` whose ``column`` equals ``value`` (null gives false)."""
-    equal: Any = pc.equal(table.column(column), pa.scalar(value))
-    return pc.fill_null(equal, pa.scalar(False))
-
-
-def _reason_counts(rejected: pa.Table) -> list[tuple[str, int]]:
-    reasons = [str(reason or "").split(":")[0] for reason in rejected.column("reason").to_pylist()]
+def _reason_counts(ledger: _Ledger, rows: np.ndarray) -> list[tuple[str, int]]:
+    """Rejected ``rows`` counted by reason code, most frequent first (ties by code)."""
     counted: dict[str, int] = {}
-    for reason in reasons:
-        counted[reason] = counted.get(reason, 0) + 1
+    missing = int(np.count_nonzero(ledger.codes["reason"][rows] < 0))
+    for reason, count in [*ledger.counts("reason", rows).items(), *([(None, missing)] if missing else [])]:
+        code = _reason_code(reason)
+        counted[code] = counted.get(code, 0) + count
     return sorted(counted.items(), key=lambda item: (-item[1], item[0]))
 
 
-def _kept_tokens(ledger: pa.Table, split: str) -> np.ndarray:
-    mask = pc.and_(_equal(ledger, "status", "kept"), _equal(ledger, "split", split))
-    return np.asarray(_column(ledger.filter(mask), "tokens"), dtype=np.int64)
+def _kept_tokens(ledger: _Ledger, split: str) -> np.ndarray:
+    tokens: np.ndarray = ledger.tokens[ledger.mask("status", "kept") & ledger.mask("split", split)]
+    return tokens
 
 
 def _splits(data: _Data) -> str:
@@ -475,10 +561,10 @@ def _clusters(data: _Data, config: ReportConfig) -> str:
 
     ledger = data.ledger
     near = data.manifest["stages"].get("near", {})
-    sizes = _value_counts(ledger.column("cluster"))
+    sizes = ledger.counts("cluster")
     if not near.get("enabled", False):
         return "<p>The near-duplicate step was off for this output: there are no clusters.</p>"
-    similarity = np.asarray(_column(ledger.filter(pc.is_valid(ledger.column("similarity"))), "similarity"))
+    similarity = ledger.similarity[ledger.has_similarity]
     threshold = data.manifest["definition"].get("near", {}).get("threshold")
     summary = (
         f"<p>{_v(len(sizes), 'ledger', 'clusters')} clusters (manifest: "
@@ -494,14 +580,14 @@ def _clusters(data: _Data, config: ReportConfig) -> str:
     )
     figure = _figure(cluster_figure(np.array(list(sizes.values())), similarity, threshold), caption)
     largest = sorted(sizes.items(), key=lambda item: (-item[1], item[0]))[: config.largest_clusters]
-    record_ids = ledger.column("record_id")
-    rows_of = {rid: int(pc.index(record_ids, pa.scalar(rid)).as_py()) for rid, _size in largest}
-    kept = [row for row in rows_of.values() if ledger.column("status")[row].as_py() == "kept"]
+    members_of = {rid: np.flatnonzero(ledger.mask("cluster", rid)) for rid, _size in largest}
+    rows_of = {rid: ledger.row_of(rid, members_of[rid]) for rid, _size in largest}
+    kept = [row for row in rows_of.values() if ledger.text(row, "status") == "kept"]
     excerpts = _excerpts(data.folder, data.manifest, ledger, kept, config.excerpt_characters) if kept else {}
     table_rows: list[Sequence[str]] = []
     for rid, size in largest:
         row = rows_of[rid]
-        members = _column(ledger.filter(_equal(ledger, "cluster", rid)), "similarity").astype(np.float64)
+        members = ledger.similarity[members_of[rid]]
         mean = float(np.nanmean(members)) if np.isfinite(members).any() else None
         excerpt = excerpts.get(row)
         text = (
@@ -511,8 +597,8 @@ def _clusters(data: _Data, config: ReportConfig) -> str:
         )
         table_rows.append([
             _v(rid, "ledger", f"row:{rid}:record_id", "text"),
-            _v(ledger.column("source")[row].as_py(), "ledger", f"row:{rid}:source", "text"),
-            _v(ledger.column("split")[row].as_py() or "", "ledger", f"row:{rid}:split", "text"),
+            _v(ledger.text(row, "source"), "ledger", f"row:{rid}:source", "text"),
+            _v(ledger.text(row, "split") or "", "ledger", f"row:{rid}:split", "text"),
             _v(size, "ledger", f"cluster-size:{rid}"),
             "" if mean is None else f"{mean:.3f}",
             text,
@@ -548,11 +634,12 @@ def _ranks(data: _Data) -> str:
 
 def _rejected(data: _Data, config: ReportConfig) -> str:
     ledger = data.ledger
-    rejected = ledger.filter(_equal(ledger, "status", "rejected"))
-    total = rejected.num_rows
+    rejected = np.flatnonzero(ledger.mask("status", "rejected"))
+    total = len(rejected)
     if not total:
         return "<p>No input record was rejected.</p>"
-    reasons = [str(reason or "").split(":")[0] for reason in rejected.column("reason").to_pylist()]
+    codes = [_reason_code(reason) for reason in ledger.values["reason"]]
+    reasons = [codes[code] if code >= 0 else "" for code in ledger.codes["reason"][rejected].tolist()]
     chosen: list[int] = []
     seen: set[str] = set()
     for index, reason in enumerate(reasons):  # one of every reason first, then in ledger order
@@ -568,7 +655,8 @@ def _rejected(data: _Data, config: ReportConfig) -> str:
     rows: list[Sequence[str]] = []
     for index in chosen:
         record = {
-            name: rejected.column(name)[index].as_py() for name in ("record_id", "source", "line", "reason")
+            name: ledger.text(int(rejected[index]), name)
+            for name in ("record_id", "source", "line", "reason")
         }
         rid = record["record_id"]
         line = record["line"]
