@@ -37,6 +37,7 @@ import numpy as np
 from corpusprep.config import setting
 from corpusprep.errors import DefinitionError, IntegrityError
 from corpusprep.hashing import hash_bytes, keyed_hash64
+from corpusprep.pool import Mapper
 from corpusprep.shards import ShardInfo, npy_header, read_shard, shard_dtype, shard_name, write_shard
 
 __all__ = [
@@ -44,6 +45,7 @@ __all__ = [
     "PackResult",
     "document_order",
     "pack_split",
+    "pack_split_mapped",
     "smallest_dtype",
     "write_document_starts",
 ]
@@ -291,6 +293,31 @@ def pack_split(
     return result
 
 
+def _starts_of(windows: np.ndarray, carry: int, length: int, eod_id: int) -> np.ndarray:
+    """[window, position] of each document start in ``windows``; ``carry``: the stream token before them."""
+    previous_last = np.concatenate(([carry], windows[:-1, length - 1])) if len(windows) else np.zeros(0)
+    first = np.flatnonzero(previous_last == eod_id)
+    rows, columns = np.nonzero(windows[:, : length - 1] == eod_id)
+    starts = np.concatenate(
+        [np.stack([first, np.zeros_like(first)], axis=1), np.stack([rows, columns + 1], axis=1)]
+    ).astype("<i4")
+    return starts[np.lexsort((starts[:, 1], starts[:, 0]))] if len(starts) else starts.reshape(0, 2)
+
+
+def _write_starts(folder: Path, name: str, starts: np.ndarray, prefix: str) -> dict[str, Any]:
+    target = folder / name.replace(".npy", ".starts.npy")
+    data = npy_header(starts.dtype, starts.shape) + np.ascontiguousarray(starts).tobytes()
+    temporary = target.with_name(f".{target.name}.partial")
+    temporary.write_bytes(data)
+    temporary.replace(target)
+    return {
+        "file": f"{prefix}{target.name}",
+        "count": len(starts),
+        "bytes": len(data),
+        "xxh3_128": hash_bytes(data),
+    }
+
+
 def write_document_starts(
     folder: Path, files: Sequence[str], *, length: int, eod_id: int, prefix: str = ""
 ) -> dict[str, dict[str, Any]]:
@@ -305,24 +332,200 @@ def write_document_starts(
     entries: dict[str, dict[str, Any]] = {}
     for name in files:
         windows = read_shard(folder / name, check_hash=False)
-        previous_last = np.concatenate(([carry], windows[:-1, length - 1])) if len(windows) else np.zeros(0)
-        first = np.flatnonzero(previous_last == eod_id)
-        rows, columns = np.nonzero(windows[:, : length - 1] == eod_id)
-        starts = np.concatenate(
-            [np.stack([first, np.zeros_like(first)], axis=1), np.stack([rows, columns + 1], axis=1)]
-        ).astype("<i4")
-        starts = starts[np.lexsort((starts[:, 1], starts[:, 0]))] if len(starts) else starts.reshape(0, 2)
+        starts = _starts_of(windows, carry, length, eod_id)
         if len(windows):
             carry = int(windows[-1, length - 1])
-        target = folder / name.replace(".npy", ".starts.npy")
-        data = npy_header(starts.dtype, starts.shape) + np.ascontiguousarray(starts).tobytes()
-        temporary = target.with_name(f".{target.name}.partial")
-        temporary.write_bytes(data)
-        temporary.replace(target)
-        entries[name] = {
-            "file": f"{prefix}{target.name}",
-            "count": len(starts),
-            "bytes": len(data),
-            "xxh3_128": hash_bytes(data),
-        }
+        entries[name] = _write_starts(folder, name, starts, prefix)
     return entries
+
+
+# --------------------------------------------------------------------------- packing as shard tasks
+@dataclass(frozen=True, slots=True, kw_only=True)
+class _ShardTask:
+    """One shard of a split: the stream range it stores and the documents that overlap it."""
+
+    split: str
+    index: int
+    raw: str  # the split's token file: the documents' ids back to back, no specials
+    dtype: str
+    begin: int  # stream position of the shard's first stored token
+    end: int  # one past its last
+    starts: np.ndarray  # stream position of each overlapping document's first token
+    offsets: np.ndarray  # its first id in ``raw``
+    lengths: np.ndarray  # its id count
+    bod_id: int | None
+    eod_id: int
+    pad_id: int
+    length: int
+    windows_per_shard: int
+    last: bool
+    tail: str
+    had_shards: bool  # a full shard comes before this last one
+    folder: str
+    document_starts: bool
+    prefix: str
+
+
+def _stream_slice(task: _ShardTask, begin: int, end: int) -> np.ndarray:
+    """Tokens ``begin .. end - 1`` of the split's stream, built from the overlapping documents."""
+    dtype = np.dtype(task.dtype)
+    out = np.empty(end - begin, dtype=dtype)
+    if end <= begin:
+        return out
+    path = Path(task.raw)
+    size = path.stat().st_size if path.exists() else 0
+    ids = np.memmap(path, dtype=dtype, mode="r") if size else np.zeros(0, dtype=dtype)
+    head = 0 if task.bod_id is None else 1
+    for start, offset, count in zip(
+        task.starts.tolist(), task.offsets.tolist(), task.lengths.tolist(), strict=True
+    ):
+        piece_begin, piece_end = start + head, start + head + count  # the ids of this document
+        if head and begin <= start < end:
+            out[start - begin] = task.bod_id
+        low, high = max(piece_begin, begin), min(piece_end, end)
+        if low < high:
+            out[low - begin : high - begin] = ids[offset + low - piece_begin : offset + high - piece_begin]
+        if begin <= piece_end < end:
+            out[piece_end - begin] = task.eod_id
+    del ids
+    return out
+
+
+def _pack_shard(task: _ShardTask) -> tuple[ShardInfo | None, dict[str, Any] | None, int, int, int]:
+    """Task: write one shard (and its document starts); ``(info, starts entry, windows, pads, dropped)``."""
+    length, folder = task.length, Path(task.folder)
+    if not folder.is_dir():
+        raise IntegrityError(
+            f"{folder}: this worker cannot see the output's shard folder; with a remote cluster the output "
+            "folder must be on storage that every worker mounts at the same path"
+        )
+    carry_needed = task.document_starts and task.begin > 0
+    stream = _stream_slice(task, task.begin - carry_needed, task.end)
+    carry = int(stream[0]) if carry_needed else task.eod_id
+    buffer = stream[1:] if carry_needed else stream
+    pads = dropped = 0
+    if not task.last:
+        rows = _window_view(buffer, task.windows_per_shard, length)
+    else:
+        fill = buffer.size
+        full = (fill - 1) // length if fill else 0
+        stored = full * length + 1 if (full or task.had_shards) else 0
+        rest = fill - stored
+        parts: list[np.ndarray] = [_window_view(buffer, full, length)] if full else []
+        if rest and task.tail == "pad":
+            start = full * length
+            padded = np.full((1, length + 1), task.pad_id, dtype=buffer.dtype)
+            padded[0, : fill - start] = buffer[start:fill]
+            pads = length + 1 - (fill - start)
+            parts.append(padded)
+        elif rest:
+            dropped = rest
+        if not parts:
+            return None, None, 0, pads, dropped
+        rows = parts[0] if len(parts) == 1 else np.concatenate(parts)
+    info = write_shard(folder, split=task.split, index=task.index, windows=rows)
+    entry = None
+    if task.document_starts:
+        entry = _write_starts(folder, info.file, _starts_of(rows, carry, length, task.eod_id), task.prefix)
+    return info, entry, int(rows.shape[0]), pads, dropped
+
+
+def pack_split_mapped(
+    split: str,
+    raw: Path,
+    offsets: np.ndarray,
+    lengths: np.ndarray,
+    order: np.ndarray,
+    *,
+    config: PackConfig,
+    eod_id: int,
+    pad_id: int,
+    bod_id: int | None,
+    dtype: np.dtype,
+    folder: Path,
+    mapper: Mapper,
+    prefix: str = "",
+) -> tuple[PackResult, dict[str, dict[str, Any]]]:
+    """:func:`pack_split` with each shard written by a ``mapper`` task; the same files, byte for byte.
+
+    The documents are ``raw[offsets[i] : offsets[i] + lengths[i]]`` taken in
+    ``order``. Every document's place in the stream follows from the lengths
+    alone, so the driver cuts the stream into shard ranges and each task
+    builds its range from the documents that overlap it, writes the shard
+    (and, with ``config.document_starts``, its starts file) and reports back.
+    Returns the result and the starts entries by shard name (as
+    :func:`write_document_starts`).
+    """
+    dtype = shard_dtype(dtype)
+    shard_name(split, 0)
+    top = int(np.iinfo(dtype).max)
+    specials = {"eod_id": eod_id, "pad_id": pad_id} | ({} if bod_id is None else {"bod_id": bod_id})
+    for key, value in specials.items():
+        if not 0 <= value <= top:
+            raise IntegrityError(f"{key} {value} does not fit in {dtype}")
+    length, per_shard = config.length, config.windows_per_shard
+    span = per_shard * length
+    head = 0 if bod_id is None else 1
+    ordered_offsets = np.asarray(offsets, dtype=np.int64)[order]
+    ordered_lengths = np.asarray(lengths, dtype=np.int64)[order]
+    pieces = ordered_lengths + head + 1
+    ends = np.cumsum(pieces)
+    starts = ends - pieces
+    total = int(ends[-1]) if ends.size else 0
+    full_shards = (total - 1) // span if total else 0
+
+    def task(index: int, begin: int, end: int, last: bool) -> _ShardTask:
+        low = begin - (1 if config.document_starts and begin > 0 else 0)
+        first = int(np.searchsorted(ends, low, side="right"))
+        stop = int(np.searchsorted(starts, end, side="left"))
+        return _ShardTask(
+            split=split,
+            index=index,
+            raw=str(raw),
+            dtype=dtype.str,
+            begin=begin,
+            end=end,
+            starts=starts[first:stop],
+            offsets=ordered_offsets[first:stop],
+            lengths=ordered_lengths[first:stop],
+            bod_id=bod_id,
+            eod_id=eod_id,
+            pad_id=pad_id,
+            length=length,
+            windows_per_shard=per_shard,
+            last=last,
+            tail=config.tail,
+            had_shards=full_shards > 0,
+            folder=str(folder),
+            document_starts=config.document_starts,
+            prefix=prefix,
+        )
+
+    tasks = [task(k, k * span, k * span + span + 1, False) for k in range(full_shards)]
+    if total:
+        tasks.append(task(full_shards, full_shards * span, total, True))
+    shards: list[ShardInfo] = []
+    entries: dict[str, dict[str, Any]] = {}
+    windows = pads = dropped = 0
+    for info, entry, rows, pad_tokens, dropped_tokens in mapper(_pack_shard, tasks):
+        windows += rows
+        pads += pad_tokens
+        dropped += dropped_tokens
+        if info is not None:
+            shards.append(info)
+        if info is not None and entry is not None:
+            entries[info.file] = entry
+    result = PackResult(
+        split=split,
+        length=length,
+        tail=config.tail,
+        dtype=dtype.str,
+        shards=tuple(shards),
+        documents=int(order.size),
+        tokens=total,
+        windows=windows,
+        pad_tokens=pads,
+        dropped_tokens=dropped,
+    )
+    result.check_accounting()
+    return result, entries

@@ -38,7 +38,7 @@ from corpusprep.hashing import hash_file, hash_text
 from corpusprep.ledger import LEDGER_FILE, write_ledger
 from corpusprep.manifest import MANIFEST_FILE, SCHEMA_VERSION, write_json_atomic
 from corpusprep.near import find_clusters
-from corpusprep.pack import document_order, pack_split, smallest_dtype, write_document_starts
+from corpusprep.pack import document_order, pack_split_mapped, smallest_dtype
 from corpusprep.pool import Mapper, local_engine
 from corpusprep.publish import check_output_folder, publish_folder
 from corpusprep.read import InputFile, read_folder
@@ -413,33 +413,21 @@ class _Run:
         self.splits = {name: info for name, info in self.splits.items() if name != split}
         count = len(self.offsets[split])
         path = self.work / f"tokens-{split}.raw"
-        tokens = (
-            np.memmap(path, dtype=self.dtype, mode="r") if path.stat().st_size else np.zeros(0, self.dtype)
-        )
         order = document_order(count, config.seed, split)
-        offsets, lengths = self.offsets[split], self.lengths[split]
-        documents = (tokens[offsets[i] : offsets[i] + lengths[i]] for i in order.tolist())
-        result = pack_split(
+        result, starts = pack_split_mapped(
             split,
-            documents,
+            path,
+            self.offsets[split],
+            self.lengths[split],
+            order,
             config=config,
             eod_id=specials["end_of_document"],
             pad_id=specials["pad"],
             bod_id=specials.get("begin_of_document"),
             dtype=self.dtype,
             folder=shard_folder,
-        )
-        del tokens
-        starts = (
-            write_document_starts(
-                shard_folder,
-                [shard.file for shard in result.shards],
-                length=config.length,
-                eod_id=specials["end_of_document"],
-                prefix=f"{SHARD_FOLDER}/",
-            )
-            if config.document_starts
-            else {}
+            mapper=self.mapper,
+            prefix=f"{SHARD_FOLDER}/",
         )
         self.splits[split] = {
             "documents": result.documents,
