@@ -47,6 +47,8 @@ vocabulary with an unknown token cannot give back every character).
 
 from __future__ import annotations
 
+import contextlib
+import gc
 import html
 import itertools
 import json
@@ -853,9 +855,29 @@ def _page(data: _Data, config: ReportConfig) -> str:
     )
 
 
+@contextlib.contextmanager
+def _collector_paused() -> Iterator[None]:
+    """Pause Python's cyclic garbage collector (restored after, if it was on).
+
+    Importing matplotlib and drawing the figures makes tens of thousands of
+    objects; each full collection then walks every object of the process (all
+    of matplotlib, NumPy and pyarrow), which took about a sixth of the report's
+    time. The figures' few reference cycles are freed at the next collection.
+    """
+    was_on = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if was_on:
+            gc.enable()
+
+
 def build_report(output: Path, config: ReportConfig | None = None) -> str:
     """The HTML text of the report of the finished ``output`` folder (deterministic for a given folder)."""
-    return _page(_read(Path(output), config or ReportConfig()), config or ReportConfig())
+    config = config or ReportConfig()
+    with _collector_paused():
+        return _page(_read(Path(output), config), config)
 
 
 def _listed_files(output: Path) -> set[Path]:
