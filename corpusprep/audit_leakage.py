@@ -46,10 +46,18 @@ import pyarrow as pa
 from corpusprep.audit_integrity import DAMAGE, LEAKAGE, OVERLAP, Finding, ShardFile
 from corpusprep.lsh import band_keys, candidate_pairs
 from corpusprep.minhash import EMPTY_VALUE, pair_similarity
-from corpusprep.ngrams import HashedChunk, StreamTables, complete_documents, hash_stream_chunk, hash_texts
+from corpusprep.ngrams import (
+    HashedChunk,
+    NgramSet,
+    StreamTables,
+    complete_documents,
+    distinct_and_index,
+    hash_stream_chunk,
+    hash_texts,
+    scan_chunk,
+)
 from corpusprep.pack import document_order
 from corpusprep.schema import KEPT
-from corpusprep.shingles import sorted_distinct
 
 __all__ = [
     "EVALUATION_SPLITS",
@@ -211,37 +219,6 @@ def packed_rows(ledger: pa.Table, split: str, seed: int) -> np.ndarray:
     return ordered
 
 
-class _HashSet:
-    """A sorted ``uint64`` array with a bit table in front of ``np.searchsorted``.
-
-    The table has about 8 slots per value, indexed by the top bits of the hash, so
-    roughly 7 in 8 hashes that are not in the set are turned away by one look-up and
-    only the rest pay for a binary search.
-    """
-
-    def __init__(self, values: np.ndarray) -> None:
-        self.values = values
-        bits = min(27, max(10, int(np.ceil(np.log2(max(values.size, 1) * 8)))))
-        self.shift = np.uint64(64 - bits)
-        self.table = np.zeros(1 << bits, dtype=bool)
-        self.table[values >> self.shift] = True
-
-    def find(self, hashes: np.ndarray) -> np.ndarray:
-        """Index in ``values`` of each hash, or -1."""
-        out = np.full(hashes.size, -1, dtype=np.int64)
-        if not self.values.size or not hashes.size:
-            return out
-        maybe = np.flatnonzero(self.table[hashes >> self.shift])
-        needles = hashes[maybe]
-        order = np.argsort(needles)  # sorted needles walk the array in order: far fewer cache misses
-        position = np.empty(needles.size, dtype=np.int64)
-        position[order] = np.searchsorted(self.values, needles[order])
-        np.minimum(position, self.values.size - 1, out=position)
-        found = self.values[position] == needles
-        out[maybe[found]] = position[found]
-        return out
-
-
 @dataclass(frozen=True, slots=True, kw_only=True)
 class _Side:
     """One evaluation source: a split of the output, or the outside items."""
@@ -265,9 +242,12 @@ class _Scan:
     def __init__(self, tables: StreamTables, ngram: int, pad_id: int, chunk_rows: int) -> None:
         self.tables, self.ngram, self.pad_id, self.chunk_rows = tables, ngram, pad_id, chunk_rows
 
-    def chunks(self, shards: Sequence[ShardFile]) -> Iterator[HashedChunk]:
+    def documents(self, shards: Sequence[ShardFile]) -> Iterator[np.ndarray]:
         stream = split_stream(shards, pad_id=self.pad_id, chunk_rows=self.chunk_rows)
-        for tokens in complete_documents(stream, self.tables.end_of_document):
+        yield from complete_documents(stream, self.tables.end_of_document)
+
+    def chunks(self, shards: Sequence[ShardFile]) -> Iterator[HashedChunk]:
+        for tokens in self.documents(shards):
             yield hash_stream_chunk(tokens, self.tables, self.ngram)
 
 
@@ -356,19 +336,18 @@ def ngram_overlap(
 
     # Pass 1: the evaluation side's distinct n-gram hashes, and the stream check of those splits.
     clock = [time.perf_counter()]
-    parts: list[np.ndarray] = []
+    held: dict[str, list[HashedChunk]] = {}  # the evaluation side is kept for pass 3
     for side in sides:
-        lengths = []
-        for chunk in side_chunks(side):
-            parts.append(sorted_distinct(chunk.hashes))
-            lengths.append(chunk.lengths)
+        held[side.name] = list(side_chunks(side))
         if side.name != "against":
+            lengths = [chunk.lengths for chunk in held[side.name]]
             found = np.concatenate(lengths) if lengths else np.zeros(0, np.int64)
             findings += _stream_findings(
                 side.name, found, ledger_tokens[packed[side.name]], side.record_ids, tail
             )
-    evaluation = sorted_distinct(np.concatenate(parts)) if parts else np.zeros(0, dtype=np.uint64)
-    members = _HashSet(evaluation)
+    every = [chunk.hashes for side in sides for chunk in held[side.name]]
+    evaluation, where = distinct_and_index(np.concatenate(every) if every else np.zeros(0, np.uint64))
+    members = NgramSet(evaluation)
 
     # Pass 2: stream train; remember the first train document holding each evaluation n-gram.
     clock.append(time.perf_counter())
@@ -376,18 +355,11 @@ def ngram_overlap(
     train_documents = 0
     train_tokens = 0
     train_lengths = []
-    for chunk in scan.chunks(shards.get("train", [])):
-        if evaluation.size and chunk.hashes.size:
-            position = members.find(chunk.hashes)
-            hit = np.flatnonzero(position >= 0)
-            if hit.size:
-                indices, first = np.unique(position[hit], return_index=True)
-                documents = chunk.document[chunk.first_word[hit[first]]] + train_documents
-                fresh = first_train[indices] < 0
-                first_train[indices[fresh]] = documents[fresh]
-        train_documents += chunk.documents
-        train_tokens += int(chunk.lengths.sum())
-        train_lengths.append(chunk.lengths)
+    for tokens in scan.documents(shards.get("train", [])):
+        counts = scan_chunk(tokens, tables, ngram, members, first_train, train_documents)
+        train_documents += counts.size
+        train_tokens += int(counts.sum())
+        train_lengths.append(counts)
         report("n-grams", train_tokens, train_total)
     if "train" in shards:
         found = np.concatenate(train_lengths) if train_lengths else np.zeros(0, np.int64)
@@ -406,11 +378,12 @@ def ngram_overlap(
         "contaminated_at": contaminated_at,
         "sides": {},
     }
+    offset = 0
     for side in sides:
         documents = tested = flagged = contaminated_documents = 0
-        for chunk in side_chunks(side):
-            position = members.find(chunk.hashes)
-            train_of = np.where(position >= 0, first_train[position], -1)
+        for chunk in held.pop(side.name):
+            train_of = first_train[where[offset : offset + chunk.hashes.size]]
+            offset += chunk.hashes.size
             owner = chunk.document[chunk.first_word]
             tested += int(np.count_nonzero(np.diff(owner)) + 1) if owner.size else 0
             matched = np.flatnonzero(train_of >= 0)  # owner is non-decreasing: n-grams come in word order

@@ -53,27 +53,38 @@ document is decoded with its ``decode`` function and normalised in Python.
 
 from __future__ import annotations
 
+import dataclasses
 import functools
+import math
+import time
 import unicodedata
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import xxhash
 
-from corpusprep.shingles import punctuation_table
+from corpusprep import ngram_kernels as kernels
+from corpusprep.shingles import punctuation_table, sorted_distinct
 
 __all__ = [
     "DEFAULT_NGRAM",
     "HashedChunk",
+    "NgramSet",
     "StreamTables",
     "complete_documents",
+    "distinct_and_index",
     "hash_normalised",
+    "hash_normalised_compiled",
     "hash_stream_chunk",
     "hash_texts",
+    "hash_texts_python",
     "ngram_hashes_scalar",
     "normal_text",
     "normal_words",
+    "scan_chunk",
+    "warm_up",
     "word_hash_scalar",
 ]
 
@@ -117,6 +128,13 @@ def _mix_int(value: int) -> int:
 @functools.cache
 def _byte_constants() -> tuple[int, ...]:
     return tuple(xxhash.xxh3_64_intdigest(b"ngram-byte:%d" % value) | 1 for value in range(256))
+
+
+@functools.cache
+def _constants_array() -> np.ndarray:
+    constants = np.array(_byte_constants(), dtype=np.uint64)
+    constants.flags.writeable = False
+    return constants
 
 
 def word_hash_scalar(word: bytes) -> int:
@@ -184,11 +202,11 @@ class HashedChunk:
     def ngram_text(self, index: int) -> str:
         """The normalised text of the ``index``-th n-gram of the chunk."""
         first = int(self.first_word[index])
-        words = (
-            self.data[int(self.starts[k]) : int(self.ends[k]) + 1].tobytes().decode("utf-8", "replace")
-            for k in range(first, first + self.ngram)
-        )
-        return " ".join(words)
+        # Between the words of a chunk lie only separators: ASCII whitespace or punctuation, or the
+        # space standing for a special id (bytes >= 128 only occur inside words), so the words of the
+        # span are its pieces between ASCII separators.
+        span = self.data[int(self.starts[first]) : int(self.ends[first + self.ngram - 1]) + 1].tobytes()
+        return " ".join(span.translate(_ascii_separators_to_space()).decode("utf-8", "replace").split())
 
 
 def hash_normalised(
@@ -211,8 +229,7 @@ def hash_normalised(
     ends = np.flatnonzero(is_word & ~after)
     word_document = np.searchsorted(np.flatnonzero(boundary), starts).astype(np.int64)
     if starts.size:
-        constants = np.array(_byte_constants(), dtype=np.uint64)
-        terms = constants[data] * _powers(_Q, size)
+        terms = _constants_array()[data] * _powers(_Q, size)
         prefix = np.cumsum(terms, dtype=np.uint64)
         below = np.where(starts > 0, prefix[np.maximum(starts - 1, 0)], np.uint64(0))
         poly = (prefix[ends] - below) * _powers(_P, size)[ends]
@@ -235,10 +252,25 @@ def hash_normalised(
     return starts, ends, word_document, _mix(accumulated[first_word]), first_word
 
 
+def hash_normalised_compiled(
+    data: np.ndarray, separator: np.ndarray, boundary: np.ndarray, ngram: int
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`hash_normalised` in one compiled pass (:func:`corpusprep.ngram_kernels.hash_words`)."""
+    if ngram < 1:
+        raise ValueError(f"ngram = {ngram}: must be at least 1")
+    data = np.ascontiguousarray(data, dtype=np.uint8)
+    separator = np.ascontiguousarray(separator, dtype=np.bool_)
+    bounds = np.flatnonzero(boundary).astype(np.int64)
+    result: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray] = kernels.hash_words(
+        data, separator, bounds, _constants_array(), ngram
+    )
+    return result
+
+
 def _finish(
     data: np.ndarray, separator: np.ndarray, boundary: np.ndarray, lengths: np.ndarray, ngram: int
 ) -> HashedChunk:
-    starts, ends, document, hashes, first_word = hash_normalised(data, separator, boundary, ngram)
+    starts, ends, document, hashes, first_word = hash_normalised_compiled(data, separator, boundary, ngram)
     return HashedChunk(
         data=data,
         starts=starts,
@@ -252,8 +284,46 @@ def _finish(
     )
 
 
+_TEXT_END = 256
+_TEXT_TABLES_ARGS = (_TEXT_END, frozenset({_TEXT_END}))
+
+
+def distinct_and_index(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The sorted distinct values (as :func:`corpusprep.shingles.sorted_distinct`), and the index
+    in them of each value: ``distinct[index] == values``. One ``np.argsort`` and one compiled pass.
+
+    >>> distinct, index = distinct_and_index(np.array([30, 10, 30, 20], dtype=np.uint64))
+    >>> distinct.tolist(), index.tolist()
+    ([10, 20, 30], [2, 0, 2, 1])
+    """
+    values = np.ascontiguousarray(values, dtype=np.uint64)
+    result: tuple[np.ndarray, np.ndarray] = kernels.distinct_index(values, np.argsort(values))
+    return result
+
+
 def hash_texts(texts: Sequence[str], ngram: int = DEFAULT_NGRAM) -> HashedChunk:
-    """Words and n-grams of whole texts (each text one document), normalised in Python."""
+    """Words and n-grams of whole texts (each text one document); ``lengths`` counts characters.
+
+    The texts go through the byte-stream path of :func:`hash_stream_chunk` as UTF-8
+    bytes, each ended by id 256 (so ASCII is normalised by table, the rest in Python).
+    """
+    encoded = [text.encode("utf-8") for text in texts]
+    joined = np.frombuffer(b"".join(encoded), dtype=np.uint8)
+    stream = np.full(joined.size + len(encoded), _TEXT_END, dtype=np.uint16)
+    if encoded:
+        text_byte = np.ones(stream.size, dtype=bool)
+        text_byte[np.cumsum([len(item) + 1 for item in encoded]) - 1] = False
+        stream[text_byte] = joined
+    end, specials = _TEXT_TABLES_ARGS
+    chunk = hash_stream_chunk(
+        stream, StreamTables(end_of_document=end, specials=specials, byte_ids=True), ngram
+    )
+    lengths = np.array([len(text) for text in texts], dtype=np.int64)
+    return dataclasses.replace(chunk, lengths=lengths)
+
+
+def hash_texts_python(texts: Sequence[str], ngram: int = DEFAULT_NGRAM) -> HashedChunk:
+    """:func:`hash_texts` with every text normalised by :func:`normal_words` (a reference path)."""
     data, separator, boundary = _encode_normal([normal_text(text).encode("utf-8") for text in texts])
     lengths = np.array([len(text) for text in texts], dtype=np.int64)
     return _finish(data, separator, boundary, lengths, ngram)
@@ -289,6 +359,12 @@ class StreamTables:
     def lookup(self, size: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Per id below ``size``: lowercase byte, separates words, ASCII whitespace or special."""
         return _lookup(size)
+
+
+@functools.cache
+def _ascii_separators_to_space() -> bytes:
+    separator = _lookup(256)[1]
+    return bytes(_SPACE if separator[value] and value < 128 else value for value in range(256))
 
 
 @functools.lru_cache(maxsize=8)
@@ -337,18 +413,17 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
     Document ``k`` of the chunk is the ``k``-th run ended by the
     end-of-document id (a last run without one counts as a document too).
     """
-    tokens = np.asarray(tokens)
+    tokens = _contiguous_ids(tokens)
     if tokens.size and tokens[-1] != tables.end_of_document:
         tokens = np.concatenate((tokens, np.array([tables.end_of_document], dtype=tokens.dtype)))
-    document_ends = np.flatnonzero(tokens == tables.end_of_document)
-    starts = np.concatenate(([0], document_ends[:-1] + 1)) if document_ends.size else document_ends
-    special_ids = np.array(sorted(tables.specials), dtype=np.int64)
-    is_special = np.isin(tokens, special_ids)
-    special_before = np.concatenate(([0], np.cumsum(is_special, dtype=np.int64)))
-    lengths = (document_ends + 1 - starts) - (special_before[document_ends + 1] - special_before[starts])
+    size = _table_size(tokens, tables)
+    lower, kind = _id_tables(size, tables.specials)
+    document_ends, lengths = kernels.documents(tokens, kind, tables.end_of_document)
     if not tables.byte_ids:
         assert tables.decode is not None
         decode = tables.decode
+        special_ids = np.array(sorted(tables.specials), dtype=np.int64)
+        starts = np.concatenate(([0], document_ends[:-1] + 1)) if document_ends.size else document_ends
         texts = []
         for begin, end in zip(starts.tolist(), document_ends.tolist(), strict=True):
             ids = tokens[begin : end + 1]
@@ -356,28 +431,21 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
         data, separator, boundary = _encode_normal([normal_text(text).encode("utf-8") for text in texts])
         return _finish(data, separator, boundary, lengths, ngram)
 
-    size = max(int(tokens.max()) + 1 if tokens.size else 0, 256, int(special_ids.max()) + 1)
-    lower, separator_of, ascii_space = tables.lookup(size)
-    data = lower[tokens]
-    separator = separator_of[tokens]
+    data, separator = kernels.normalise_tokens(tokens, lower, kind)
     boundary = np.zeros(tokens.size, dtype=bool)
     boundary[document_ends] = True
-    wide = (tokens >= 128) & (tokens < 256)
-    if not wide.any():
+    if not kernels.census(tokens, tables.end_of_document)[1]:
         return _finish(data, separator, boundary, lengths, ngram)
     # A run of tokens between ASCII whitespace (or special ids) that holds a byte >= 128 is decoded
     # and normalised in Python. Cutting at ASCII whitespace changes nothing: it is never part of a
     # UTF-8 sequence, and it is neither cased nor case-ignorable, so str.lower (final sigma
     # included) and str.split give the same words as on the whole document.
-    spaces = np.flatnonzero(ascii_space[tokens])
-    runs = np.unique(np.searchsorted(spaces, np.flatnonzero(wide)))
+    begins, ends = kernels.wide_runs(tokens, _lookup(size)[2])
     pieces_data: list[np.ndarray] = []
     pieces_separator: list[np.ndarray] = []
     pieces_boundary: list[np.ndarray] = []
     position = 0
-    for run in runs.tolist():
-        begin = int(spaces[run - 1]) + 1 if run > 0 else 0
-        end = int(spaces[run]) if run < spaces.size else tokens.size
+    for begin, end in zip(begins.tolist(), ends.tolist(), strict=True):
         pieces_data.append(data[position:begin])
         pieces_separator.append(separator[position:begin])
         pieces_boundary.append(boundary[position:begin])
@@ -397,3 +465,163 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
         lengths,
         ngram,
     )
+
+
+# --------------------------------------------------------------------------- train scan
+class NgramSet:
+    """Distinct n-gram hashes, sorted, with a two-probe bit filter in front of the binary search.
+
+    The filter has ``2^width`` bits, about ``bits_per_value`` per value; a hash is looked up
+    only when the bits at its top ``width`` bits and at its low ``width`` bits are both
+    set, so a hash that is not in the set is turned away with probability about
+    ``1 - (1 - exp(-2 / bits_per_value))^2`` (a Bloom filter with two probes) without
+    touching the sorted array.
+    """
+
+    def __init__(self, values: np.ndarray, *, bits_per_value: int = 16) -> None:
+        values = np.ascontiguousarray(values, dtype=np.uint64)
+        if values.size > 1 and not bool(np.all(values[1:] > values[:-1])):
+            raise ValueError("NgramSet values must be sorted and distinct")
+        self.values = values
+        width = min(30, max(10, math.ceil(math.log2(max(values.size, 1) * bits_per_value))))
+        self.shift = np.uint64(64 - width)
+        self.mask = np.uint64((1 << width) - 1)
+        flags = np.zeros(1 << width, dtype=bool)
+        flags[values >> self.shift] = True
+        flags[values & self.mask] = True
+        self.bits = np.packbits(flags, bitorder="little").view("<u8").astype(np.uint64)
+
+    def find(self, hashes: np.ndarray) -> np.ndarray:
+        """Index in ``values`` of each hash, or -1 (compiled)."""
+        hashes = np.ascontiguousarray(hashes, dtype=np.uint64)
+        found: np.ndarray = kernels.find_sorted(hashes, self.bits, self.shift, self.mask, self.values)
+        return found
+
+    def find_reference(self, hashes: np.ndarray) -> np.ndarray:
+        """:meth:`find` by ``np.searchsorted`` alone (the reference)."""
+        out = np.full(hashes.size, -1, dtype=np.int64)
+        if not self.values.size:
+            return out
+        position = np.minimum(np.searchsorted(self.values, hashes), self.values.size - 1)
+        found = self.values[position] == hashes
+        out[found] = position[found]
+        return out
+
+
+@functools.lru_cache(maxsize=8)
+def _id_tables(size: int, specials: frozenset[int]) -> tuple[np.ndarray, np.ndarray]:
+    """Per id below ``size``: its lowercase byte and its kind code for :func:`scan_tokens`."""
+    lower, separator, _ = _lookup(size)
+    kind = np.where(separator, kernels.SEPARATOR, kernels.WORD_BYTE).astype(np.uint8)
+    for value in specials:
+        if 0 <= value < size:
+            kind[value] = kernels.SPECIAL
+    kind.flags.writeable = False
+    return lower, kind
+
+
+def _contiguous_ids(tokens: np.ndarray) -> np.ndarray:
+    tokens = np.asarray(tokens)
+    if tokens.dtype.kind not in "ui":
+        tokens = tokens.astype(np.int64)
+    return np.ascontiguousarray(tokens)
+
+
+def _table_size(tokens: np.ndarray, tables: StreamTables) -> int:
+    top = max(255, *tables.specials) if tables.specials else 255
+    if tokens.dtype.kind == "u" and tokens.dtype.itemsize <= 2:
+        return max(1 << (8 * tokens.dtype.itemsize), top + 1)
+    return max(int(tokens.max()) + 1 if tokens.size else 0, top + 1)
+
+
+def scan_chunk(
+    tokens: np.ndarray,
+    tables: StreamTables,
+    ngram: int,
+    members: NgramSet,
+    first_train: np.ndarray,
+    document_base: int,
+) -> np.ndarray:
+    """Look every word n-gram of a run of documents up in ``members``; the documents' lengths.
+
+    For each n-gram found at index ``j`` of ``members.values``, ``first_train[j]``
+    becomes the smallest document number that holds it (``document_base`` plus the
+    chunk-local document, counted as in :func:`hash_stream_chunk`; -1 means none
+    yet). Returns the token counts of the chunk's documents without special ids. The
+    same result as hashing the chunk with :func:`hash_stream_chunk` and looking its
+    hashes up; with the byte tokenizer it is one compiled pass
+    (:func:`corpusprep.ngram_kernels.scan_tokens`).
+    """
+    if ngram < 1:
+        raise ValueError(f"ngram = {ngram}: must be at least 1")
+    tokens = _contiguous_ids(tokens)
+    if not tables.byte_ids:
+        chunk = hash_stream_chunk(tokens, tables, ngram)
+        position = members.find(chunk.hashes)
+        hit = np.flatnonzero(position >= 0)
+        if hit.size:
+            indices, first = np.unique(position[hit], return_index=True)
+            documents = chunk.document[chunk.first_word[hit[first]]] + document_base
+            seen = first_train[indices]
+            fresh = (seen < 0) | (documents < seen)
+            first_train[indices[fresh]] = documents[fresh]
+        return chunk.lengths
+    size = _table_size(tokens, tables)
+    lower, kind = _id_tables(size, tables.specials)
+    ends, wide = kernels.census(tokens, tables.end_of_document)
+    documents = int(ends) + int(bool(tokens.size) and int(tokens[-1]) != tables.end_of_document)
+    lengths = np.zeros(documents, dtype=np.int64)
+    run_begin = run_end = np.zeros(0, dtype=np.int64)
+    run_offsets = np.zeros(1, dtype=np.int64)
+    run_words = np.zeros(0, dtype=np.uint64)
+    if wide:
+        # Runs between ASCII whitespace holding a byte >= 128 are normalised in Python, as in
+        # hash_stream_chunk; the kernel takes their word hashes instead of reading them.
+        run_begin, run_end = kernels.wide_runs(tokens, _lookup(size)[2])
+        counts = [0]
+        words: list[bytes] = []
+        for begin, end in zip(run_begin.tolist(), run_end.tolist(), strict=True):
+            text = tokens[begin:end].astype(np.uint8).tobytes().decode("utf-8", errors="replace")
+            found = [word.encode("utf-8") for word in normal_words(text)]
+            words += found
+            counts.append(len(found))
+        run_offsets = np.cumsum(counts, dtype=np.int64)
+        run_words = kernels.word_hashes(np.frombuffer(b" ".join(words), dtype=np.uint8), _constants_array())
+    kernels.scan_tokens(
+        tokens,
+        lower,
+        kind,
+        tables.end_of_document,
+        run_begin,
+        run_end,
+        run_offsets,
+        run_words,
+        _constants_array(),
+        ngram,
+        members.bits,
+        members.shift,
+        members.mask,
+        members.values,
+        first_train,
+        document_base,
+        lengths,
+    )
+    return lengths
+
+
+def warm_up(token_dtypes: Sequence[np.dtype[Any] | type] = (np.uint16,)) -> float:
+    """Compile, or load from numba's disk cache, every kernel for these token dtypes; seconds taken.
+
+    Runs each fast path once on a tiny input (a non-ASCII word included), so that the
+    first real call pays no compilation.
+    """
+    started = time.perf_counter()
+    chunk = hash_texts(["Ferry été dock", ""], 1)
+    members = NgramSet(sorted_distinct(chunk.hashes))
+    members.find(chunk.hashes)
+    for dtype in token_dtypes:
+        tokens = np.array([*"Été b".encode(), _TEXT_END], dtype=dtype)
+        tables = StreamTables(end_of_document=_TEXT_END, specials=frozenset({_TEXT_END}), byte_ids=True)
+        hash_stream_chunk(tokens, tables, 1)
+        scan_chunk(tokens, tables, 1, members, np.full(members.values.size, -1, dtype=np.int64), 0)
+    return time.perf_counter() - started

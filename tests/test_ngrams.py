@@ -22,12 +22,19 @@ from hypothesis import strategies as st
 from corpusprep.audit_integrity import ShardFile
 from corpusprep.audit_leakage import ngram_overlap
 from corpusprep.ngrams import (
+    NgramSet,
     StreamTables,
     complete_documents,
+    distinct_and_index,
+    hash_normalised,
+    hash_normalised_compiled,
     hash_stream_chunk,
     hash_texts,
+    hash_texts_python,
     ngram_hashes_scalar,
     normal_words,
+    scan_chunk,
+    warm_up,
     word_hash_scalar,
 )
 from corpusprep.pack import PackConfig, pack_split
@@ -186,3 +193,130 @@ def test_overlap_equals_brute_force(
             words = tuple(finding.details["ngram_text"].split(" "))
             assert words in train_grams  # the example shown is a real shared n-gram
             assert words in brute_ngrams(validation[int(finding.details["record_id"][1:])], n)
+
+
+# --------------------------------------------------------------------------- compiled fast paths
+# Each compiled kernel (corpusprep.ngram_kernels) is held to the NumPy path and to the plain-Python
+# reference (normal_words / ngram_hashes_scalar) on the same generated texts.
+def _numpy_scan(
+    tokens: np.ndarray, tables: StreamTables, n: int, members: NgramSet, first: np.ndarray, base: int
+) -> np.ndarray:
+    """What scan_chunk must do, written with hash_stream_chunk and np.searchsorted."""
+    chunk = hash_stream_chunk(tokens, tables, n)
+    position = members.find_reference(chunk.hashes)
+    for index in np.flatnonzero(position >= 0).tolist():
+        document = int(chunk.document[chunk.first_word[index]]) + base
+        slot = int(position[index])
+        if first[slot] < 0 or document < first[slot]:
+            first[slot] = document
+    return chunk.lengths
+
+
+@settings(max_examples=150, deadline=None)
+@given(texts=st.lists(TEXT, max_size=6), n=st.integers(1, 5))
+def test_compiled_hashing_equals_numpy_and_scalar(texts: list[str], n: int) -> None:
+    expected = [value for text in texts for value in ngram_hashes_scalar(text, n)]
+    python = hash_texts_python(texts, n)
+    assert python.hashes.tolist() == expected
+    separator = python.data == ord(" ")
+    boundary = np.zeros(python.data.size, dtype=bool)
+    compiled = hash_normalised_compiled(python.data, separator, boundary, n)
+    reference = hash_normalised(python.data, separator, boundary, n)
+    for left, right in zip(compiled, reference, strict=True):
+        assert left.dtype == right.dtype and left.tolist() == right.tolist()
+    fast = hash_texts(texts, n)
+    assert fast.hashes.tolist() == expected
+    assert fast.lengths.tolist() == [len(text) for text in texts]
+    # the example text of each n-gram is its normalised words (brute force, independent rule)
+    by_text = [
+        tuple(words[i : i + n]) for words in map(brute_words, texts) for i in range(len(words) - n + 1)
+    ]
+    assert [tuple(fast.ngram_text(i).split(" ")) for i in range(fast.hashes.size)] == by_text
+
+
+@settings(max_examples=100, deadline=None)
+@given(
+    data=st.binary(max_size=60),
+    cuts=st.lists(st.integers(0, 60), max_size=4),
+    n=st.integers(1, 4),
+)
+def test_compiled_word_spans_equal_numpy(data: bytes, cuts: list[int], n: int) -> None:
+    """Any separator mask and document ends (not only those of real text): same spans and hashes."""
+    values = np.frombuffer(data, dtype=np.uint8)
+    separator = values % 3 == 0
+    boundary = np.zeros(values.size, dtype=bool)
+    for cut in cuts:
+        if cut < values.size:
+            boundary[cut] = separator[cut] = True
+    compiled = hash_normalised_compiled(values, separator, boundary, n)
+    reference = hash_normalised(values, separator, boundary, n)
+    assert [part.tolist() for part in compiled] == [part.tolist() for part in reference]
+
+
+@settings(max_examples=120, deadline=None)
+@given(
+    train=st.lists(TEXT, max_size=6),
+    evaluation=st.lists(TEXT, max_size=4),
+    n=st.integers(1, 4),
+    cut=st.integers(1, 400),
+    base=st.integers(0, 5),
+    tail=st.booleans(),
+)
+def test_scan_chunk_equals_hash_and_lookup(
+    train: list[str], evaluation: list[str], n: int, cut: int, base: int, tail: bool
+) -> None:
+    # evaluation n-grams plus some of train's, so that hits and misses both occur
+    shared = hash_texts(evaluation + train[:1], n).hashes
+    members = NgramSet(np.unique(shared))
+    stream = stream_of(train)
+    if tail and stream.size:
+        stream = stream[:-1]  # a last document without its end id
+    for tables in (TABLES, StreamTables(end_of_document=EOD, specials=frozenset({EOD}), byte_ids=True)):
+        fast = np.full(members.values.size, -1, dtype=np.int64)
+        slow = fast.copy()
+        fast_lengths = []
+        slow_lengths = []
+        offset = base
+        for chunk in complete_documents([stream[i : i + cut] for i in range(0, stream.size, cut)], EOD):
+            fast_lengths.append(scan_chunk(chunk, tables, n, members, fast, offset))
+            slow_lengths.append(_numpy_scan(chunk, tables, n, members, slow, offset))
+            offset += slow_lengths[-1].size
+        assert fast.tolist() == slow.tolist()
+        assert [x.tolist() for x in fast_lengths] == [x.tolist() for x in slow_lengths]
+    # brute force: an evaluation n-gram is found iff some train text holds it
+    train_grams = set().union(*(brute_ngrams(text, n) for text in train)) if train else set()
+    for text in evaluation:
+        for gram, value in zip(
+            [tuple(w[i : i + n]) for w in [brute_words(text)] for i in range(len(w) - n + 1)],
+            hash_texts([text], n).hashes.tolist(),
+            strict=True,
+        ):
+            slot = int(np.searchsorted(members.values, value))
+            assert (fast[slot] >= 0) == (gram in train_grams)
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    values=st.lists(st.integers(0, (1 << 64) - 1), max_size=300),
+    probes=st.lists(st.integers(0, (1 << 64) - 1), max_size=300),
+    bits=st.integers(1, 16),
+)
+def test_hash_set_find_and_distinct_index(values: list[int], probes: list[int], bits: int) -> None:
+    array = np.array(values, dtype=np.uint64)
+    distinct, index = distinct_and_index(array)
+    unique, inverse = np.unique(array, return_inverse=True)  # NumPy's own, the reference
+    assert distinct.tolist() == unique.tolist() and index.tolist() == inverse.ravel().tolist()
+    members = NgramSet(distinct, bits_per_value=bits)
+    needles = np.array(probes + values, dtype=np.uint64)
+    expected = [sorted(set(values)).index(v) if v in set(values) else -1 for v in needles.tolist()]
+    assert members.find(needles).tolist() == expected
+    assert members.find_reference(needles).tolist() == expected
+    with pytest.raises(ValueError, match="sorted and distinct"):
+        NgramSet(np.array([2, 1], dtype=np.uint64))
+
+
+def test_warm_up_compiles_every_kernel() -> None:
+    assert warm_up((np.uint16, np.uint32)) >= 0.0
+    tables = StreamTables(end_of_document=EOD, specials=frozenset({EOD, PAD}), byte_ids=True)
+    wide = np.array([*"Ünïcode DOCK".encode(), EOD], dtype=np.uint32)
+    assert hash_stream_chunk(wide, tables, 1).hashes.tolist() == ngram_hashes_scalar("Ünïcode DOCK", 1)
