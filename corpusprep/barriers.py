@@ -105,12 +105,14 @@ def _exact_partition(item: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
 
 
 def first_occurrences_mapped(
-    keys: np.ndarray, candidates: np.ndarray, mapper: Mapper, *, partition_rows: int = EXACT_PARTITION_ROWS
+    keys: np.ndarray, candidates: np.ndarray, mapper: Mapper, *, partition_rows: int | None = None
 ) -> np.ndarray:
     """:func:`corpusprep.exact.first_occurrences`, with the key partitions run through ``mapper``.
 
-    The result is the same array for any ``partition_rows`` and any engine.
+    The result is the same array for any ``partition_rows`` (default
+    :data:`EXACT_PARTITION_ROWS`) and any engine.
     """
+    partition_rows = partition_rows or EXACT_PARTITION_ROWS
     result = np.full(len(keys), -1, dtype=np.int64)
     rows = np.flatnonzero(candidates)
     if rows.size == 0:
@@ -163,7 +165,9 @@ class MappedPairWork:
     """A :class:`corpusprep.near.PairWork` whose work runs as ``mapper`` tasks.
 
     ``rows[i]`` is the row of signature ``i`` in the staged documents file
-    ``documents`` (both in the work folder).
+    ``documents`` (both in the work folder). The task sizes default to the
+    module's :data:`BAND_TASKS`, :data:`PAIRS_PER_TASK` and
+    :data:`EXACT_PAIRS_PER_TASK`, read when the work is done.
     """
 
     mapper: Mapper
@@ -171,13 +175,13 @@ class MappedPairWork:
     documents: str
     rows: np.ndarray
     config: NearConfig
-    band_tasks: int = BAND_TASKS
-    pairs_per_task: int = PAIRS_PER_TASK
-    exact_pairs_per_task: int = EXACT_PAIRS_PER_TASK
+    band_tasks: int | None = None
+    pairs_per_task: int | None = None
+    exact_pairs_per_task: int | None = None
 
     def candidates(self, bands: int, rows: int, bucket_limit: int) -> np.ndarray:
         check_banding((self.store.documents, self.store.permutations), bands, rows, bucket_limit)
-        tasks_count = min(self.band_tasks, bands)
+        tasks_count = min(self.band_tasks or BAND_TASKS, bands)
         groups = [list(range(index, bands, tasks_count)) for index in range(tasks_count)]
         tasks = ((self.store, group, rows, bucket_limit) for group in groups)
         found = list(self.mapper(_band_task, tasks))
@@ -188,10 +192,13 @@ class MappedPairWork:
         return np.concatenate(results) if results else np.empty(0, dtype=np.float64)
 
     def estimates(self, pairs: np.ndarray) -> np.ndarray:
-        items = [(self.store, chunk) for chunk in _chunks(pairs, self.pairs_per_task)]
+        items = [(self.store, chunk) for chunk in _chunks(pairs, self.pairs_per_task or PAIRS_PER_TASK)]
         return self._map(_estimate_task, items)
 
     def exact(self, pairs: np.ndarray) -> np.ndarray:
         staged = self.rows[pairs] if len(pairs) else pairs
-        items = [(self.documents, self.config, chunk) for chunk in _chunks(staged, self.exact_pairs_per_task)]
+        items = [
+            (self.documents, self.config, chunk)
+            for chunk in _chunks(staged, self.exact_pairs_per_task or EXACT_PAIRS_PER_TASK)
+        ]
         return self._map(_exact_task, items)

@@ -277,6 +277,72 @@ def test_a_task_that_keeps_killing_workers_fails_the_run_and_publishes_nothing(
     assert not [p.name for p in tmp_path.iterdir() if p.name.startswith(".")], "a partial folder is left"
 
 
+def _named_map_wrapped(
+    mapper: Mapper, name: str, wrap: Callable[[Callable[[Any], Any]], Callable[[Any], Any]]
+) -> Mapper:
+    """``mapper``, with the function of every map whose function is called ``name`` wrapped by ``wrap``."""
+
+    def wrapped(function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
+        return mapper(wrap(function) if getattr(function, "__name__", "") == name else function, items)
+
+    return wrapped
+
+
+@pytest.mark.parametrize("task", ["_band_task", "_exact_task"])
+def test_a_worker_dying_inside_a_near_duplicate_task_is_retried_elsewhere(
+    client: Client, archive: Path, demo_reference: dict[str, bytes], tmp_path: Path, task: str
+) -> None:
+    # The near-duplicate step's LSH band tasks and exact-Jaccard tasks run on the workers
+    # (corpusprep.barriers); a worker dying under one is replaced and the task recomputed.
+    import functools
+
+    marker = tmp_path / "died"
+    mapper = _named_map_wrapped(
+        dask_mapper(client), task, lambda f: functools.partial(_die_once, str(marker), f)
+    )
+    definition = load_definition(DEMO).with_folders(input=archive, output=tmp_path / "demo")
+    output = run_pipeline(definition, mapper=mapper).output
+    assert marker.exists(), f"no worker died inside {task}"
+    client.wait_for_workers(2)
+    assert _tree_bytes(output) == demo_reference
+
+
+def test_global_steps_cut_into_many_tasks_give_the_local_bytes(
+    client: Client, archive: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Small task sizes, so every global step becomes many tasks spread over both workers.
+    from corpusprep import barriers
+    from corpusprep.definition import parse_definition
+
+    for name, value in [
+        ("EXACT_PARTITION_ROWS", 16),
+        ("BAND_TASKS", 5),
+        ("PAIRS_PER_TASK", 16),
+        ("EXACT_PAIRS_PER_TASK", 4),
+    ]:
+        monkeypatch.setattr(barriers, name, value)
+    text = DEMO.read_text(encoding="utf-8").replace("windows_per_shard = 256", "windows_per_shard = 8")
+    definition = parse_definition(text, source=str(DEMO), base=DEMO.parent)
+    local = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "local"), workers=1)
+    counted: dict[str, int] = {}
+    inner = dask_mapper(client)
+
+    def counting(function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
+        name = getattr(getattr(function, "func", function), "__name__", "?")
+
+        def counted_items() -> Iterator[Any]:
+            for item in items:
+                counted[name] = counted.get(name, 0) + 1
+                yield item
+
+        return inner(function, counted_items())
+
+    remote = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "dask"), mapper=counting)
+    for name in ("_exact_partition", "_band_task", "_estimate_task", "_exact_task", "_pack_shard"):
+        assert counted.get(name, 0) > 1, f"{name}: {counted.get(name, 0)} tasks"
+    assert _tree_bytes(remote.output) == _tree_bytes(local.output)
+
+
 # ---------------------------------------------------------------------------- command line
 
 runner = CliRunner()
