@@ -45,7 +45,7 @@ from corpusprep.cli import EXIT_USAGE, app
 from corpusprep.definition import load_definition
 from corpusprep.manifest import dump_json
 from corpusprep.pipeline import run_pipeline
-from corpusprep.report import build_report, default_report_path, write_report
+from corpusprep.report import build_report, default_report_path, token_frequencies, write_report
 
 ROOT = Path(__file__).parent.parent
 sys.path.insert(0, str(ROOT / "fixtures"))
@@ -315,12 +315,20 @@ windows_per_shard = 100
 """
 
 
-def test_numbers_hold_without_near_step_with_bytes_and_a_dropped_tail(demo: Demo, tmp_path: Path) -> None:
-    """Source: as above (json, pyarrow, numpy) for another definition: no clusters, bytes, tail dropped."""
-    definition = tmp_path / "variant.toml"
+@pytest.fixture(scope="module")
+def variant(demo: Demo, tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The demo archive through VARIANT: several shards per split, a dropped tail."""
+    folder = tmp_path_factory.mktemp("variant")
+    definition = folder / "variant.toml"
     definition.write_text(VARIANT, encoding="utf-8")
-    output = tmp_path / "variant"
+    output = folder / "variant"
     run_pipeline(load_definition(definition).with_folders(input=demo.archive, output=output))
+    return output
+
+
+def test_numbers_hold_without_near_step_with_bytes_and_a_dropped_tail(variant: Path) -> None:
+    """Source: as above (json, pyarrow, numpy) for another definition: no clusters, bytes, tail dropped."""
+    output = variant
     text = build_report(output)
     page = parse(text)
     references = References(output)
@@ -332,6 +340,21 @@ def test_numbers_hold_without_near_step_with_bytes_and_a_dropped_tail(demo: Demo
     shard_tokens = sum(references.shard_value(f"text-tokens:{s}") for s in ("train", "validation", "test"))
     ledger_tokens = sum(references.ledger_value(f"split-tokens:{s}") for s in ("train", "validation", "test"))
     assert ledger_tokens - dropped <= shard_tokens < ledger_tokens
+
+
+@pytest.mark.parametrize("chunk_rows", [1, 7, 1024])
+def test_token_counts_per_id_equal_numpy_over_the_rebuilt_stream(variant: Path, chunk_rows: int) -> None:
+    """Source: numpy.load + np.bincount of the stream rebuilt as the manifest states it (window[:-1] of
+    every window, then the last window's last token), per token id; blocks of 1 and 7 windows put block
+    edges everywhere, and the variant has several shards per split, so shard edges are crossed too."""
+    references = References(variant)
+    vocab = int(references.manifest["tokenizer"]["vocab_size"])
+    for split, info in references.manifest["splits"].items():
+        assert len(info["shards"]) > 1
+        expected = np.zeros(vocab, dtype=np.int64)
+        counted = references.token_counts(split)
+        expected[: len(counted)] = counted
+        assert np.array_equal(token_frequencies(variant, split, chunk_rows=chunk_rows), expected), split
 
 
 def test_shard_token_counts_agree_with_the_ledger(demo: Demo) -> None:
