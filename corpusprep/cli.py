@@ -18,7 +18,6 @@ from __future__ import annotations
 
 import contextlib
 import enum
-import os
 import sys
 import traceback
 from collections.abc import Callable
@@ -99,10 +98,6 @@ def _guard(debug: bool, action: Callable[[], T]) -> T:
         )
 
 
-def _default_workers() -> int:
-    return max(1, min(os.cpu_count() or 1, 8))
-
-
 @app.command()
 def check(
     pipeline: Annotated[Path, typer.Argument(help="Pipeline definition (TOML).")],
@@ -131,31 +126,38 @@ def run(
         Path | None, typer.Option("--output", help="Write this folder instead of the definition's.")
     ] = None,
     workers: Annotated[
-        int, typer.Option("--workers", min=1, help="Worker processes (output is identical for any number).")
-    ] = _default_workers(),
+        int | None,
+        typer.Option(
+            "--workers",
+            min=1,
+            help="Worker processes (output is identical for any number); default: the definition's "
+            "engine.workers, else one per core, at most 8.",
+        ),
+    ] = None,
     force: Annotated[bool, typer.Option("--force", help="Replace a non-empty output folder.")] = False,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress bars and no summary.")] = False,
     engine: Annotated[
-        Engine,
+        Engine | None,
         typer.Option(
             "--engine",
-            help="Where per-batch work runs: local processes, or Dask (a local cluster of --workers "
-            "processes, or the cluster at --scheduler). Output is identical either way.",
+            help="Where the work runs: local processes, or Dask (a local cluster of --workers "
+            "processes, or the cluster at --scheduler). Output is identical either way. "
+            "Default: the definition's engine.kind (local).",
         ),
-    ] = Engine.local,
+    ] = None,
     scheduler: Annotated[
         str | None,
         typer.Option(
             "--scheduler",
             metavar="ADDRESS",
             help="With --engine dask: connect to this running Dask scheduler (tcp://HOST:PORT); "
-            "--workers is then ignored.",
+            "--workers is then ignored. Default: the definition's engine.scheduler.",
         ),
     ] = None,
     debug: DebugOption = False,
 ) -> None:
     """Run a pipeline definition on a raw folder and write shards, ledger and manifest."""
-    if scheduler is not None and engine is not Engine.dask:
+    if scheduler is not None and engine is Engine.local:
         raise typer.BadParameter("needs --engine dask", param_hint="--scheduler")
 
     def action() -> None:
@@ -164,14 +166,24 @@ def run(
         from corpusprep.summary import print_summary, progress_printer
 
         definition = load_definition(pipeline).with_folders(input=input, output=output)
+        chosen = engine or Engine(definition.engine.kind)
+        address = scheduler or definition.engine.scheduler or None
+        count = workers or definition.engine.worker_count()
+        if address is not None and chosen is not Engine.dask:
+            _fail(
+                f"a scheduler ({address}, from --scheduler or engine.scheduler) needs the dask engine: "
+                "pass --engine dask or set "
+                f"engine.kind = 'dask' in {pipeline}",
+                EXIT_USAGE,
+            )
         with contextlib.ExitStack() as stack:
             mapper = None
-            if engine is Engine.dask:
+            if chosen is Engine.dask:
                 from corpusprep.engine_dask import dask_engine
 
-                mapper = stack.enter_context(dask_engine(scheduler, workers))
+                mapper = stack.enter_context(dask_engine(address, count))
             progress = stack.enter_context(progress_printer(enabled=not quiet))
-            result = run_pipeline(definition, workers=workers, force=force, progress=progress, mapper=mapper)
+            result = run_pipeline(definition, workers=count, force=force, progress=progress, mapper=mapper)
         if not quiet:
             print_summary(result.manifest, result.output)
 

@@ -30,6 +30,7 @@ from pathlib import Path
 from typing import Any
 
 from corpusprep.clean import CleanConfig
+from corpusprep.engine import EngineConfig
 from corpusprep.errors import DefinitionError
 from corpusprep.exact import ExactConfig
 from corpusprep.hashing import hash_text
@@ -39,7 +40,7 @@ from corpusprep.read import ReadConfig
 from corpusprep.split import SplitConfig
 from corpusprep.tokens import TokenizerConfig
 
-__all__ = ["STAGE_TABLES", "Definition", "load_definition", "parse_definition"]
+__all__ = ["RUN_TABLES", "STAGE_TABLES", "Definition", "load_definition", "parse_definition"]
 
 #: Definition table name -> settings dataclass, in the order the stages run.
 STAGE_TABLES: dict[str, type] = {
@@ -51,6 +52,9 @@ STAGE_TABLES: dict[str, type] = {
     "tokenizer": TokenizerConfig,
     "pack": PackConfig,
 }
+#: Tables that say where and how the run works, not what it writes: left out of
+#: :meth:`Definition.resolved` and the digest, so they never change the output.
+RUN_TABLES: dict[str, type] = {"engine": EngineConfig}
 _TOP_LEVEL = {"input": "folder to read", "output": "folder to write"}
 
 _TABLE_LINE = re.compile(r"^\s*\[\s*([A-Za-z0-9_.-]+)\s*\]")
@@ -72,6 +76,7 @@ class Definition:
     split: SplitConfig
     tokenizer: TokenizerConfig
     pack: PackConfig
+    engine: EngineConfig = dataclasses.field(default_factory=EngineConfig)
 
     def stages(self) -> dict[str, Any]:
         """The stage settings by table name, in run order."""
@@ -80,8 +85,9 @@ class Definition:
     def resolved(self) -> dict[str, dict[str, Any]]:
         """Every stage setting with defaults filled in, as JSON-ready data.
 
-        Folders are left out on purpose: the same definition run on the same
-        input gives the same output wherever the folders live.
+        Folders and the ``[engine]`` table are left out on purpose: the same
+        definition run on the same input gives the same output wherever the
+        folders live and whatever runs it.
         """
         return {
             name: {field.name: _jsonable(getattr(config, field.name)) for field in dataclasses.fields(config)}
@@ -192,12 +198,12 @@ def parse_definition(text: str, *, source: str = "<definition>", base: Path | No
     except tomllib.TOMLDecodeError as error:
         raise DefinitionError(f"{source}: not valid TOML: {error}") from None
     where = _Where(source, _key_lines(text))
-    known = set(_TOP_LEVEL) | set(STAGE_TABLES)
+    known = set(_TOP_LEVEL) | set(STAGE_TABLES) | set(RUN_TABLES)
     for key in data:
         if key not in known:
             raise DefinitionError(
                 f"{where(key)}: unknown key {key}; valid top-level keys: {', '.join(_TOP_LEVEL)}; "
-                f"valid tables: {', '.join(STAGE_TABLES)}"
+                f"valid tables: {', '.join([*STAGE_TABLES, *RUN_TABLES])}"
             )
     folders: dict[str, Path | None] = {}
     for key in _TOP_LEVEL:
@@ -209,7 +215,8 @@ def parse_definition(text: str, *, source: str = "<definition>", base: Path | No
             raise DefinitionError(f"{where(key)}: {key} = {value!r}: must be a folder path (a string)")
         path = Path(value)
         folders[key] = (base / path if base is not None and not path.is_absolute() else path).resolve()
-    stages = {name: _build_stage(name, cls, data.get(name, {}), where) for name, cls in STAGE_TABLES.items()}
+    tables = {**STAGE_TABLES, **RUN_TABLES}
+    stages = {name: _build_stage(name, cls, data.get(name, {}), where) for name, cls in tables.items()}
     return Definition(
         source=source,
         base=base.resolve() if base is not None else None,

@@ -13,7 +13,7 @@ from pathlib import Path
 from typing import Any
 
 from corpusprep.config import setting_docs
-from corpusprep.definition import STAGE_TABLES
+from corpusprep.definition import RUN_TABLES, STAGE_TABLES
 
 __all__ = ["BEGIN", "END", "settings_reference", "update_readme"]
 
@@ -51,7 +51,7 @@ def settings_reference() -> str:
         "definition file; `--input` and `--output` override them. Every table and key is optional.",
         "",
     ]
-    for name, cls in STAGE_TABLES.items():
+    for name, cls in {**STAGE_TABLES, **RUN_TABLES}.items():
         parts.append(f"#### `[{name}]`")
         parts.append("")
         if cls.__doc__:

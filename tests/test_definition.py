@@ -94,3 +94,24 @@ def test_missing_file_is_a_definition_error(tmp_path: Path) -> None:
 @pytest.mark.parametrize("path", PIPELINES, ids=[p.name for p in PIPELINES])
 def test_every_example_pipeline_is_valid(path: Path) -> None:
     load_definition(path)
+
+
+# The [engine] table says where the run works, never what it writes (see corpusprep.engine).
+def test_the_engine_table_is_read_but_stays_out_of_the_digest() -> None:
+    plain = parse_definition("[split]\nseed = 3\n", source="plain.toml")
+    text = '[split]\nseed = 3\n\n[engine]\nkind = "dask"\nworkers = 3\nscheduler = "tcp://10.0.0.5:8786"\n'
+    on_cluster = parse_definition(text, source="cluster.toml")
+    assert (on_cluster.engine.kind, on_cluster.engine.workers) == ("dask", 3)
+    assert on_cluster.engine.scheduler == "tcp://10.0.0.5:8786"
+    assert "engine" not in on_cluster.resolved()
+    assert on_cluster.digest() == plain.digest()
+    assert plain.engine.kind == "local" and plain.engine.worker_count() >= 1
+
+
+def test_engine_errors_name_the_line_and_key() -> None:
+    assert _error('[engine]\nkind = "spark"\n').startswith(
+        'demo.toml:2: engine.kind = "spark": must be one of'
+    )
+    message = _error('\n[engine]\nscheduler = "tcp://10.0.0.5:8786"\n')
+    assert message.startswith("demo.toml:2: engine.scheduler") and "engine.kind = 'dask'" in message
+    assert _error("[engine]\nthreads = 2\n").startswith("demo.toml:2: unknown key engine.threads")

@@ -370,6 +370,72 @@ def test_cli_dask_engine_starts_and_stops_a_local_cluster(
     assert _tree_bytes(tmp_path / "out") == demo_reference
 
 
+def test_cli_takes_the_engine_from_the_definition(
+    archive: Path, demo_reference: dict[str, bytes], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from corpusprep import engine_dask
+
+    started: list[tuple[str | None, int]] = []
+    real = engine_dask.dask_engine
+
+    def recording(scheduler: str | None, workers: int) -> Any:
+        started.append((scheduler, workers))
+        return real(scheduler, workers)
+
+    monkeypatch.setattr(engine_dask, "dask_engine", recording)
+    definition = tmp_path / "cluster.toml"
+    definition.write_text(
+        DEMO.read_text(encoding="utf-8") + '\n[engine]\nkind = "dask"\nworkers = 2\n', encoding="utf-8"
+    )
+    arguments = [
+        "run",
+        str(definition),
+        "--input",
+        str(archive),
+        "--output",
+        str(tmp_path / "out"),
+        "--quiet",
+    ]
+    result = runner.invoke(app, arguments)
+    assert result.exit_code == EXIT_OK, result.output
+    assert started == [(None, 2)]
+    assert _tree_bytes(tmp_path / "out") == demo_reference
+    local = runner.invoke(
+        app, ["run", str(definition), "--input", str(archive), "--output", str(tmp_path / "local"), "--quiet",
+              "--engine", "local"],
+    )  # fmt: skip
+    assert local.exit_code == EXIT_OK, local.output
+    assert started == [(None, 2)], "--engine local overrides the definition"
+
+
+def test_a_dask_run_interrupted_while_packing_resumes_from_its_checkpoint(
+    client: Client, archive: Path, demo_reference: dict[str, bytes], tmp_path: Path
+) -> None:
+    # An interrupt keeps the partial folder and its checkpoints (corpusprep.pipeline); the next run
+    # through Dask resumes after the last checkpoint: no first-pass task runs again.
+    inner = dask_mapper(client)
+    mapped: list[str] = []
+
+    def interrupting(function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
+        name = getattr(getattr(function, "func", function), "__name__", "?")
+        if name == "_pack_shard":
+            raise KeyboardInterrupt
+        return inner(function, items)
+
+    def recording(function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
+        mapped.append(getattr(getattr(function, "func", function), "__name__", "?"))
+        return inner(function, items)
+
+    definition = load_definition(DEMO).with_folders(input=archive, output=tmp_path / "demo")
+    with pytest.raises(KeyboardInterrupt):
+        run_pipeline(definition, mapper=interrupting)
+    assert (tmp_path / ".demo.partial").is_dir()
+    output = run_pipeline(definition, mapper=recording).output
+    assert "prepare_batch" not in mapped and "encode_texts" not in mapped
+    assert "_pack_shard" in mapped
+    assert _tree_bytes(output) == demo_reference
+
+
 def test_cli_scheduler_needs_the_dask_engine(tmp_path: Path) -> None:
     result = runner.invoke(app, ["run", str(DEMO), "--scheduler", "tcp://127.0.0.1:8786", "--quiet"])
     assert result.exit_code == EXIT_USAGE
