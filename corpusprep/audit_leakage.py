@@ -34,9 +34,11 @@ packing order of :func:`corpusprep.pack.document_order`.
 
 from __future__ import annotations
 
+import queue
 import time
-from collections import defaultdict
+from collections import defaultdict, deque
 from collections.abc import Callable, Iterator, Sequence
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
@@ -52,6 +54,7 @@ from corpusprep.ngrams import (
     StreamTables,
     complete_documents,
     distinct_and_index,
+    document_count,
     hash_stream_chunk,
     hash_texts,
     scan_chunk,
@@ -219,6 +222,73 @@ def packed_rows(ledger: pa.Table, split: str, seed: int) -> np.ndarray:
     return ordered
 
 
+class _TrainScan:
+    """Chunks of the train stream looked up in ``members`` by ``workers`` threads, lengths in order.
+
+    Iterating yields the document lengths of each chunk in stream order; then
+    :meth:`first_train` gives, per evaluation n-gram, the first train document that
+    holds it (-1: none). At most ``2 * workers`` chunks are in flight.
+    """
+
+    def __init__(
+        self, chunks: Iterator[np.ndarray], tables: StreamTables, ngram: int, members: NgramSet, workers: int
+    ) -> None:
+        self.chunks, self.tables, self.ngram, self.members, self.workers = (
+            chunks,
+            tables,
+            ngram,
+            members,
+            workers,
+        )
+        self.tables_free: queue.SimpleQueue[np.ndarray] = queue.SimpleQueue()
+        self.tables_all = [members.new_marks() for _ in range(workers)]
+        for table in self.tables_all:
+            self.tables_free.put(table)
+
+    def _one(self, tokens: np.ndarray, base: int) -> np.ndarray:
+        table = self.tables_free.get()
+        try:
+            return scan_chunk(tokens, self.tables, self.ngram, self.members, table, base)
+        finally:
+            self.tables_free.put(table)
+
+    def __iter__(self) -> Iterator[np.ndarray]:
+        if self.workers == 1:
+            base = 0
+            for tokens in self.chunks:
+                lengths = self._one(tokens, base)
+                base += lengths.size
+                yield lengths
+            return
+        end = self.tables.end_of_document
+        with ThreadPoolExecutor(max_workers=self.workers, thread_name_prefix="ngram-scan") as pool:
+            pending: deque[Future[np.ndarray]] = deque()
+            base = 0
+            for tokens in self.chunks:
+                pending.append(pool.submit(self._one, tokens, base))
+                base += document_count(tokens, end)
+                while len(pending) >= 2 * self.workers:
+                    yield pending.popleft().result()
+            while pending:
+                yield pending.popleft().result()
+
+    def first_train(self) -> np.ndarray:
+        return self.members.first_documents(*self.tables_all)
+
+
+def _runs(values: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Value, first index and length of each run of equal values (``np.unique`` of a sorted array).
+
+    >>> [part.tolist() for part in _runs(np.array([4, 4, 7, 9, 9, 9]))]
+    [[4, 7, 9], [0, 2, 3], [2, 1, 3]]
+    """
+    if not values.size:
+        empty = np.zeros(0, dtype=np.int64)
+        return values[:0], empty, empty
+    starts = np.flatnonzero(np.concatenate(([True], values[1:] != values[:-1])))
+    return values[starts], starts, np.diff(np.append(starts, values.size))
+
+
 @dataclass(frozen=True, slots=True, kw_only=True)
 class _Side:
     """One evaluation source: a split of the output, or the outside items."""
@@ -298,6 +368,7 @@ def ngram_overlap(
     train_total: int | None = None,
     progress: Progress | None = None,
     contaminated_at: float = 0.0,
+    workers: int = 1,
 ) -> NgramResult:
     """Long n-gram overlap of validation, test and the outside items with train.
 
@@ -351,21 +422,21 @@ def ngram_overlap(
 
     # Pass 2: stream train; remember the first train document holding each evaluation n-gram.
     clock.append(time.perf_counter())
-    first_train = np.full(evaluation.size, -1, dtype=np.int64)
     train_documents = 0
     train_tokens = 0
     train_lengths = []
-    for tokens in scan.documents(shards.get("train", [])):
-        counts = scan_chunk(tokens, tables, ngram, members, first_train, train_documents)
+    scanned = _TrainScan(scan.documents(shards.get("train", [])), tables, ngram, members, workers)
+    for counts in scanned:
         train_documents += counts.size
         train_tokens += int(counts.sum())
         train_lengths.append(counts)
         report("n-grams", train_tokens, train_total)
+    first_train = scanned.first_train()
     if "train" in shards:
         found = np.concatenate(train_lengths) if train_lengths else np.zeros(0, np.int64)
         train_ids = record_ids[packed["train"]].tolist()
         findings += _stream_findings("train", found, ledger_tokens[packed["train"]], train_ids, tail)
-    train_record = record_ids[packed["train"]] if "train" in packed else np.zeros(0, dtype=object)
+    train_record = record_ids[packed["train"]].tolist() if "train" in packed else []
 
     # Pass 3: which evaluation documents hold a matched n-gram; one example n-gram each.
     clock.append(time.perf_counter())
@@ -387,14 +458,15 @@ def ngram_overlap(
             owner = chunk.document[chunk.first_word]
             tested += int(np.count_nonzero(np.diff(owner)) + 1) if owner.size else 0
             matched = np.flatnonzero(train_of >= 0)  # owner is non-decreasing: n-grams come in word order
-            all_owners, all_counts = np.unique(owner, return_counts=True)
+            all_owners, _, all_counts = _runs(owner)
             positions = dict(zip(all_owners.tolist(), all_counts.tolist(), strict=True))
-            owners, starts, counts = np.unique(owner[matched], return_index=True, return_counts=True)
-            for document, start, count in zip(owners.tolist(), starts.tolist(), counts.tolist(), strict=True):
+            owners, starts, counts = _runs(owner[matched])
+            examples = matched[starts]
+            for document, example, train_document, count in zip(
+                owners.tolist(), examples.tolist(), train_of[examples].tolist(), counts.tolist(), strict=True
+            ):
                 fraction = count / positions[document]
                 contaminated = side.name == "against" or fraction >= contaminated_at
-                example = int(matched[start])
-                train_document = int(train_of[example])
                 record = side.record_ids[documents + document]
                 text = chunk.ngram_text(example)
                 findings.append(

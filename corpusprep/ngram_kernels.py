@@ -23,6 +23,7 @@ import numba as nb
 import numpy as np
 
 __all__ = [
+    "build_marks",
     "census",
     "distinct_index",
     "documents",
@@ -46,6 +47,11 @@ _SIX = np.uint64(6)
 _LOW6 = np.uint64(63)
 _ONE = np.uint64(1)
 _ZERO = np.uint64(0)
+_TWELVE = np.uint64(12)
+
+#: Marks of the table of :func:`build_marks`: a free slot, a value no document holds yet.
+EMPTY = np.uint64(0xFFFFFFFFFFFFFFFF)
+UNSEEN = np.uint64(0xFFFFFFFFFFFFFFFE)
 
 #: Codes of the per-id kind table of :func:`scan_tokens`.
 WORD_BYTE, SEPARATOR, SPECIAL = 0, 1, 3
@@ -69,13 +75,10 @@ def _mix(z: np.uint64) -> np.uint64:  # SplitMix64 finaliser (Steele, Lea & Floo
 
 
 @_inline
-def _maybe(bits: np.ndarray, shift: np.uint64, mask: np.uint64, value: np.uint64) -> bool:
-    """Both probes of the two-probe bit filter are set (no false negatives)."""
-    first = value >> shift
-    second = value & mask
-    if (bits[first >> _SIX] >> (first & _LOW6)) & _ONE == _ZERO:
-        return False
-    found: bool = (bits[second >> _SIX] >> (second & _LOW6)) & _ONE != _ZERO
+def _maybe(bits: np.ndarray, shift: np.uint64, value: np.uint64) -> bool:
+    """Both bits of ``value`` are set in its word of the blocked bit filter (no false negatives)."""
+    pattern = (_ONE << (value & _LOW6)) | (_ONE << ((value >> _SIX) & _LOW6))
+    found: bool = bits[value >> shift] & pattern == pattern
     return found
 
 
@@ -139,23 +142,15 @@ def documents(tokens: np.ndarray, kind: np.ndarray, end_of_document: int) -> tup
 
 
 @_jit
-def normalise_tokens(
-    tokens: np.ndarray, lower: np.ndarray, kind: np.ndarray
-) -> tuple[np.ndarray, np.ndarray]:
-    """Per id: its lowercase byte (0x20 for ids at or above the table) and whether it separates words."""
+def normalise_tokens(tokens: np.ndarray, lower: np.ndarray) -> np.ndarray:
+    """Per id its lowercase byte (0x20 for ids at or above the table)."""
     size = tokens.size
     table = lower.size
     data = np.empty(size, dtype=np.uint8)
-    separator = np.empty(size, dtype=np.bool_)
     for i in range(size):
         value = tokens[i]
-        if value >= 0 and value < table:
-            data[i] = lower[value]
-            separator[i] = kind[value] != WORD_BYTE
-        else:
-            data[i] = 0x20
-            separator[i] = True
-    return data, separator
+        data[i] = lower[value] if value >= 0 and value < table else 0x20
+    return data
 
 
 @_jit
@@ -178,14 +173,75 @@ def word_hashes(data: np.ndarray, constants: np.ndarray) -> np.ndarray:
     return out[:count].copy()
 
 
+@_inline
+def _roll(word: np.uint64, ring: np.ndarray, slot: int, rolling: np.uint64, rn: np.uint64) -> tuple[int, Any]:
+    """Push a word hash into the ring of the last ``ring.size`` words; the new rolling polynomial."""
+    old = ring[slot]
+    ring[slot] = word
+    slot += 1
+    if slot == ring.size:
+        slot = 0
+    return slot, rolling * _R + word - old * rn
+
+
+@_inline
+def _home(value: np.uint64, slot_mask: int) -> int:
+    return int(value >> _TWELVE) & slot_mask
+
+
+@_inline
+def _record(
+    gram: np.uint64, bits: np.ndarray, shift: np.uint64, marks: np.ndarray, slot_mask: int, here: int
+) -> None:
+    """Lower the mark of ``gram`` in the table ``marks`` to ``here`` if it is there."""
+    if not _maybe(bits, shift, gram):
+        return
+    slot = _home(gram, slot_mask)
+    while True:
+        state = marks[slot, 1]
+        if state == EMPTY:
+            return
+        if marks[slot, 0] == gram:
+            if np.uint64(here) < state:
+                marks[slot, 1] = np.uint64(here)
+            return
+        slot = (slot + 1) & slot_mask
+
+
+@_jit
+def build_marks(values: np.ndarray, slot_bits: int) -> tuple[np.ndarray, np.ndarray]:
+    """An open-addressing table (linear probing) of distinct ``values``, and the slot of each.
+
+    Row ``s`` of the table holds a value and its mark: :data:`EMPTY` for a free slot,
+    :data:`UNSEEN` until a document number lowers it. A value's home slot is taken from
+    bits 12 and up, which the bit filter does not use for tables below ``2^(64 - 12)``.
+    """
+    slots = 1 << slot_bits
+    slot_mask = slots - 1
+    marks = np.empty((slots, 2), dtype=np.uint64)
+    marks[:, 0] = _ZERO
+    marks[:, 1] = EMPTY
+    slot_of = np.empty(values.size, dtype=np.int64)
+    for j in range(values.size):
+        value = values[j]
+        slot = _home(value, slot_mask)
+        while marks[slot, 1] != EMPTY:
+            slot = (slot + 1) & slot_mask
+        marks[slot, 0] = value
+        marks[slot, 1] = UNSEEN
+        slot_of[j] = slot
+    return marks, slot_of
+
+
 @_jit
 def hash_words(
-    data: np.ndarray, separator: np.ndarray, bounds: np.ndarray, constants: np.ndarray, ngram: int
+    data: np.ndarray, terms: np.ndarray, bounds: np.ndarray, ngram: int
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """``starts, ends, word_document, hashes, first_word`` as :func:`corpusprep.ngrams.hash_normalised`.
 
-    ``separator`` is the boolean mask over ``data``; ``bounds`` the sorted positions of
-    document ends. The document of a word counts the bounds before its first byte.
+    ``terms[b]`` is the byte constant of byte ``b``, or 0 when ``b`` separates words;
+    ``bounds`` are the sorted positions of document ends. The document of a word
+    counts the bounds before its first byte.
     """
     size = data.size
     limit = (size + 1) // 2
@@ -206,31 +262,24 @@ def hash_words(
     last_document = -1
     bound = 0
     poly = _ZERO
-    begin = 0
+    length = 0
     for i in range(size + 1):
-        inside = i < size and not separator[i]
-        if inside:
-            byte = data[i]
-            if i == 0 or separator[i - 1]:
-                begin = i
-                poly = _ZERO
-            poly = poly * _P + constants[byte]
+        term = terms[data[i]] if i < size else _ZERO
+        if term != _ZERO:
+            poly = poly * _P + term
+            length += 1
             continue
-        if i == 0 or separator[i - 1]:
+        if length == 0:
             continue
-        # a word ends at i - 1
+        begin = i - length
         while bound < bounds.size and bounds[bound] < begin:
             bound += 1
-        word = _mix(poly ^ (np.uint64(i - begin) * _G))
+        slot, rolling = _roll(_mix(poly ^ (np.uint64(length) * _G)), ring, slot, rolling, rn)
+        poly = _ZERO
+        length = 0
         starts[words] = begin
         ends[words] = i - 1
         document[words] = bound
-        old = ring[slot]
-        ring[slot] = word
-        slot += 1
-        if slot == ngram:
-            slot = 0
-        rolling = rolling * _R + word - old * rn
         if bound != last_document:
             last_document = bound
             run = 0
@@ -252,114 +301,94 @@ def hash_words(
 @_jit
 def scan_tokens(
     tokens: np.ndarray,
-    lower: np.ndarray,
+    terms: np.ndarray,
     kind: np.ndarray,
     end_of_document: int,
     run_begin: np.ndarray,
     run_end: np.ndarray,
     run_offsets: np.ndarray,
     run_words: np.ndarray,
-    constants: np.ndarray,
     ngram: int,
     bits: np.ndarray,
     shift: np.uint64,
-    mask: np.uint64,
-    values: np.ndarray,
-    first_train: np.ndarray,
+    marks: np.ndarray,
+    slot_mask: int,
     document_base: int,
     lengths: np.ndarray,
 ) -> None:
     """Hash every word n-gram of a run of documents and look it up in a sorted set.
 
-    ``lower``/``kind`` map ids below their size to a lowercase byte and to
+    ``terms`` maps each id below its size that is a word byte to the byte constant of
+    its lowercase byte, and every other id to 0; ``kind`` maps ids to
     :data:`WORD_BYTE`, :data:`SEPARATOR` or :data:`SPECIAL` (larger ids separate words
-    and are counted, as ids that are not special). Runs ``run_begin[r]:run_end[r]`` (sorted, each beginning
-    after a separator) are not read: their words are the precomputed hashes
-    ``run_words[run_offsets[r]:run_offsets[r + 1]]``. For every n-gram found in
-    ``values`` (``bits``, ``shift``, ``mask``: the bit filter), ``first_train`` of
-    its index becomes the smallest document number holding it
-    (``document_base`` + chunk-local document). ``lengths[k]`` receives the
-    non-special token count of document ``k`` of the chunk.
+    and count, as ids that are not special do). Runs ``run_begin[r]:run_end[r]``
+    (sorted, each beginning after a separator or at 0) are not read: their words are
+    the precomputed hashes ``run_words[run_offsets[r]:run_offsets[r + 1]]``. For every
+    n-gram that passes the bit filter (``bits``, ``shift``) and is in the table
+    ``marks`` (:func:`build_marks`), its mark becomes the smallest document number
+    holding it (``document_base`` + chunk-local document). ``lengths[k]`` receives the
+    count of ids that are not special in document ``k`` of the chunk.
     """
     size = tokens.size
-    table = lower.size
+    table = terms.size
     ring = np.zeros(ngram, dtype=np.uint64)
     rn = _ONE
     for _ in range(ngram):
         rn = rn * _R
+    end_is_special = 0 <= end_of_document < table and kind[end_of_document] == SPECIAL
     slot = 0
     rolling = _ZERO
     run = 0
     document = 0
-    counted = 0
+    document_start = 0
+    specials = 0
     poly = _ZERO
     length = 0
-    next_run = 0
-    pending = run_begin[0] if run_begin.size else -1
+    injected = 0
     i = 0
-    while i <= size:
-        injected = -1
-        if i == pending:
-            injected = next_run
-            next_run += 1
-            pending = run_begin[next_run] if next_run < run_begin.size else -1
-            code = SEPARATOR
-        elif i < size:
+    while True:
+        stop = run_begin[injected] if injected < run_begin.size else size
+        while i < stop:
             value = tokens[i]
-            code = kind[value] if value >= 0 and value < table else SEPARATOR
-            if code == WORD_BYTE:
-                poly = poly * _P + constants[lower[value]]
+            term = terms[value] if value >= 0 and value < table else _ZERO
+            i += 1
+            if term != _ZERO:
+                poly = poly * _P + term
                 length += 1
-                counted += 1
-                i += 1
                 continue
-            counted += code != SPECIAL
-        else:
-            code = SEPARATOR
-        # words end here: the one being built, then those of an injected run
-        first = 0
-        last = 0
-        if injected >= 0:
-            first = run_offsets[injected]
-            last = run_offsets[injected + 1]
-        pushed = -1 if length else 0
-        index = first + pushed
-        while index < last:
-            if index < first:
-                word = _mix(poly ^ (np.uint64(length) * _G))
+            if length:
+                slot, rolling = _roll(_mix(poly ^ (np.uint64(length) * _G)), ring, slot, rolling, rn)
                 poly = _ZERO
                 length = 0
-            else:
-                word = run_words[index]
-            index += 1
-            old = ring[slot]
-            ring[slot] = word
-            slot += 1
-            if slot == ngram:
-                slot = 0
-            rolling = rolling * _R + word - old * rn
+                run += 1
+                if run >= ngram:
+                    _record(_mix(rolling), bits, shift, marks, slot_mask, document_base + document)
+            if value == end_of_document:
+                lengths[document] = i - document_start - specials - end_is_special
+                document += 1
+                document_start = i
+                specials = 0
+                run = 0
+            elif value >= 0 and value < table and kind[value] == SPECIAL:
+                specials += 1
+        if length:
+            slot, rolling = _roll(_mix(poly ^ (np.uint64(length) * _G)), ring, slot, rolling, rn)
+            poly = _ZERO
+            length = 0
             run += 1
             if run >= ngram:
-                gram = _mix(rolling)
-                if _maybe(bits, shift, mask, gram):
-                    where = _position(values, gram)
-                    if where >= 0:
-                        seen = first_train[where]
-                        here = document_base + document
-                        if seen < 0 or here < seen:
-                            first_train[where] = here
-        if injected >= 0:
-            counted += run_end[injected] - run_begin[injected]
-            i = run_end[injected]
-            continue
-        if i < size and tokens[i] == end_of_document:
-            lengths[document] = counted
-            counted = 0
-            document += 1
-            run = 0
-        elif i == size and document < lengths.size:
-            lengths[document] = counted
-        i += 1
+                _record(_mix(rolling), bits, shift, marks, slot_mask, document_base + document)
+        if injected == run_begin.size:
+            break
+        for index in range(run_offsets[injected], run_offsets[injected + 1]):
+            slot, rolling = _roll(run_words[index], ring, slot, rolling, rn)
+            run += 1
+            if run >= ngram:
+                _record(_mix(rolling), bits, shift, marks, slot_mask, document_base + document)
+        i = run_end[injected]
+        injected += 1
+    if document < lengths.size:
+        lengths[document] = size - document_start - specials
 
 
 @_jit
@@ -385,16 +414,14 @@ def distinct_index(values: np.ndarray, order: np.ndarray) -> tuple[np.ndarray, n
 
 
 @_jit
-def find_sorted(
-    hashes: np.ndarray, bits: np.ndarray, shift: np.uint64, mask: np.uint64, values: np.ndarray
-) -> np.ndarray:
+def find_sorted(hashes: np.ndarray, bits: np.ndarray, shift: np.uint64, values: np.ndarray) -> np.ndarray:
     """Index in the sorted ``values`` of each hash, or -1 (bit filter first)."""
     out = np.full(hashes.size, -1, dtype=np.int64)
     if values.size == 0:
         return out
     for i in range(hashes.size):
         value = hashes[i]
-        if _maybe(bits, shift, mask, value):
+        if _maybe(bits, shift, value):
             out[i] = _position(values, value)
     return out
 

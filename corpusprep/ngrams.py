@@ -73,8 +73,10 @@ __all__ = [
     "HashedChunk",
     "NgramSet",
     "StreamTables",
+    "byte_separators",
     "complete_documents",
     "distinct_and_index",
+    "document_count",
     "hash_normalised",
     "hash_normalised_compiled",
     "hash_stream_chunk",
@@ -253,24 +255,40 @@ def hash_normalised(
 
 
 def hash_normalised_compiled(
-    data: np.ndarray, separator: np.ndarray, boundary: np.ndarray, ngram: int
+    data: np.ndarray, boundary: np.ndarray, ngram: int
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`hash_normalised` in one compiled pass (:func:`corpusprep.ngram_kernels.hash_words`)."""
+    """:func:`hash_normalised` with ``separator`` the ASCII separators and the space, in one compiled pass.
+
+    That is the separator mask of every chunk built here: between words lie ASCII
+    whitespace or punctuation (the table of :func:`_lookup`) or the space that stands
+    for a special id, and bytes >= 128 occur only inside words.
+    """
     if ngram < 1:
         raise ValueError(f"ngram = {ngram}: must be at least 1")
     data = np.ascontiguousarray(data, dtype=np.uint8)
-    separator = np.ascontiguousarray(separator, dtype=np.bool_)
     bounds = np.flatnonzero(boundary).astype(np.int64)
     result: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray] = kernels.hash_words(
-        data, separator, bounds, _constants_array(), ngram
+        data, _byte_terms(), bounds, ngram
     )
     return result
 
 
-def _finish(
-    data: np.ndarray, separator: np.ndarray, boundary: np.ndarray, lengths: np.ndarray, ngram: int
-) -> HashedChunk:
-    starts, ends, document, hashes, first_word = hash_normalised_compiled(data, separator, boundary, ngram)
+@functools.cache
+def _byte_terms() -> np.ndarray:
+    """Per byte: its constant, or 0 when it separates words (ASCII whitespace and punctuation)."""
+    terms = np.where(_lookup(256)[1], np.uint64(0), _constants_array()).astype(np.uint64)
+    terms.flags.writeable = False
+    return terms
+
+
+def byte_separators(data: np.ndarray) -> np.ndarray:
+    """The separator mask that :func:`hash_normalised_compiled` applies to ``data``."""
+    separator: np.ndarray = _lookup(256)[1][np.asarray(data, dtype=np.uint8)]
+    return separator
+
+
+def _finish(data: np.ndarray, boundary: np.ndarray, lengths: np.ndarray, ngram: int) -> HashedChunk:
+    starts, ends, document, hashes, first_word = hash_normalised_compiled(data, boundary, ngram)
     return HashedChunk(
         data=data,
         starts=starts,
@@ -284,10 +302,6 @@ def _finish(
     )
 
 
-_TEXT_END = 256
-_TEXT_TABLES_ARGS = (_TEXT_END, frozenset({_TEXT_END}))
-
-
 def distinct_and_index(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """The sorted distinct values (as :func:`corpusprep.shingles.sorted_distinct`), and the index
     in them of each value: ``distinct[index] == values``. One ``np.argsort`` and one compiled pass.
@@ -299,6 +313,10 @@ def distinct_and_index(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     values = np.ascontiguousarray(values, dtype=np.uint64)
     result: tuple[np.ndarray, np.ndarray] = kernels.distinct_index(values, np.argsort(values))
     return result
+
+
+_TEXT_END = 256
+_TEXT_TABLES_ARGS = (_TEXT_END, frozenset({_TEXT_END}))
 
 
 def hash_texts(texts: Sequence[str], ngram: int = DEFAULT_NGRAM) -> HashedChunk:
@@ -324,20 +342,19 @@ def hash_texts(texts: Sequence[str], ngram: int = DEFAULT_NGRAM) -> HashedChunk:
 
 def hash_texts_python(texts: Sequence[str], ngram: int = DEFAULT_NGRAM) -> HashedChunk:
     """:func:`hash_texts` with every text normalised by :func:`normal_words` (a reference path)."""
-    data, separator, boundary = _encode_normal([normal_text(text).encode("utf-8") for text in texts])
+    data, boundary = _encode_normal([normal_text(text).encode("utf-8") for text in texts])
     lengths = np.array([len(text) for text in texts], dtype=np.int64)
-    return _finish(data, separator, boundary, lengths, ngram)
+    return _finish(data, boundary, lengths, ngram)
 
 
-def _encode_normal(normal: list[bytes]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _encode_normal(normal: list[bytes]) -> tuple[np.ndarray, np.ndarray]:
     """Normalised documents as one byte array, a space after each (a separator and a boundary)."""
     joined = b"".join(item + b" " for item in normal)
     data = np.frombuffer(joined, dtype=np.uint8)
-    separator = data == _SPACE
     boundary = np.zeros(data.size, dtype=bool)
     if normal:
         boundary[np.cumsum([len(item) + 1 for item in normal]) - 1] = True
-    return data, separator, boundary
+    return data, boundary
 
 
 # --------------------------------------------------------------------------- token streams
@@ -417,7 +434,7 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
     if tokens.size and tokens[-1] != tables.end_of_document:
         tokens = np.concatenate((tokens, np.array([tables.end_of_document], dtype=tokens.dtype)))
     size = _table_size(tokens, tables)
-    lower, kind = _id_tables(size, tables.specials)
+    lower, kind, _ = _id_tables(size, tables.specials)
     document_ends, lengths = kernels.documents(tokens, kind, tables.end_of_document)
     if not tables.byte_ids:
         assert tables.decode is not None
@@ -428,39 +445,34 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
         for begin, end in zip(starts.tolist(), document_ends.tolist(), strict=True):
             ids = tokens[begin : end + 1]
             texts.append(decode(ids[~np.isin(ids, special_ids)].tolist()))
-        data, separator, boundary = _encode_normal([normal_text(text).encode("utf-8") for text in texts])
-        return _finish(data, separator, boundary, lengths, ngram)
+        data, boundary = _encode_normal([normal_text(text).encode("utf-8") for text in texts])
+        return _finish(data, boundary, lengths, ngram)
 
-    data, separator = kernels.normalise_tokens(tokens, lower, kind)
+    data = kernels.normalise_tokens(tokens, lower)
     boundary = np.zeros(tokens.size, dtype=bool)
     boundary[document_ends] = True
     if not kernels.census(tokens, tables.end_of_document)[1]:
-        return _finish(data, separator, boundary, lengths, ngram)
+        return _finish(data, boundary, lengths, ngram)
     # A run of tokens between ASCII whitespace (or special ids) that holds a byte >= 128 is decoded
     # and normalised in Python. Cutting at ASCII whitespace changes nothing: it is never part of a
     # UTF-8 sequence, and it is neither cased nor case-ignorable, so str.lower (final sigma
     # included) and str.split give the same words as on the whole document.
     begins, ends = kernels.wide_runs(tokens, _lookup(size)[2])
     pieces_data: list[np.ndarray] = []
-    pieces_separator: list[np.ndarray] = []
     pieces_boundary: list[np.ndarray] = []
     position = 0
     for begin, end in zip(begins.tolist(), ends.tolist(), strict=True):
         pieces_data.append(data[position:begin])
-        pieces_separator.append(separator[position:begin])
         pieces_boundary.append(boundary[position:begin])
         text = tokens[begin:end].astype(np.uint8).tobytes().decode("utf-8", errors="replace")
         piece = np.frombuffer(normal_text(text).encode("utf-8"), dtype=np.uint8)
         pieces_data.append(piece)
-        pieces_separator.append(piece == _SPACE)
         pieces_boundary.append(np.zeros(piece.size, dtype=bool))
         position = end
     pieces_data.append(data[position:])
-    pieces_separator.append(separator[position:])
     pieces_boundary.append(boundary[position:])
     return _finish(
         np.concatenate(pieces_data),
-        np.concatenate(pieces_separator),
         np.concatenate(pieces_boundary),
         lengths,
         ngram,
@@ -469,13 +481,15 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
 
 # --------------------------------------------------------------------------- train scan
 class NgramSet:
-    """Distinct n-gram hashes, sorted, with a two-probe bit filter in front of the binary search.
+    """Distinct n-gram hashes: sorted, behind a bit filter, and in a table of marks for the train scan.
 
-    The filter has ``2^width`` bits, about ``bits_per_value`` per value; a hash is looked up
-    only when the bits at its top ``width`` bits and at its low ``width`` bits are both
-    set, so a hash that is not in the set is turned away with probability about
-    ``1 - (1 - exp(-2 / bits_per_value))^2`` (a Bloom filter with two probes) without
-    touching the sorted array.
+    The filter is blocked (Putze, Sanders & Singler 2007; from memory): a hash sets two
+    bits, chosen by its low 12 bits, in the 64-bit word chosen by its top bits, about
+    ``bits_per_value`` bits per value; so a hash that is not in the set passes with
+    probability about ``(1 - exp(-2 / bits_per_value))^2`` and costs one cache line.
+    Hashes that pass are looked up in an open-addressing table
+    (:func:`corpusprep.ngram_kernels.build_marks`, at most half full) whose rows also
+    hold each value's mark: the first train document holding it.
     """
 
     def __init__(self, values: np.ndarray, *, bits_per_value: int = 16) -> None:
@@ -483,18 +497,41 @@ class NgramSet:
         if values.size > 1 and not bool(np.all(values[1:] > values[:-1])):
             raise ValueError("NgramSet values must be sorted and distinct")
         self.values = values
-        width = min(30, max(10, math.ceil(math.log2(max(values.size, 1) * bits_per_value))))
-        self.shift = np.uint64(64 - width)
-        self.mask = np.uint64((1 << width) - 1)
-        flags = np.zeros(1 << width, dtype=bool)
-        flags[values >> self.shift] = True
-        flags[values & self.mask] = True
-        self.bits = np.packbits(flags, bitorder="little").view("<u8").astype(np.uint64)
+        width = min(34, max(12, math.ceil(math.log2(max(values.size, 1) * bits_per_value))))
+        self.shift = np.uint64(64 - (width - 6))
+        self.bits = np.zeros(1 << (width - 6), dtype=np.uint64)
+        if values.size:
+            low = values & np.uint64(63)
+            high = (values >> np.uint64(6)) & np.uint64(63)
+            pattern = (np.uint64(1) << low) | (np.uint64(1) << high)
+            np.bitwise_or.at(self.bits, (values >> self.shift).astype(np.int64), pattern)
+        slot_bits = max(4, math.ceil(math.log2(max(values.size, 1) * 2)))
+        self.slot_mask = (1 << slot_bits) - 1
+        self._marks, self.slot_of = kernels.build_marks(values, slot_bits)
+
+    def new_marks(self) -> np.ndarray:
+        """A fresh table of marks (no document seen) for :func:`scan_chunk`; one per worker."""
+        marks: np.ndarray = self._marks.copy()
+        return marks
+
+    def first_documents(self, *tables: np.ndarray) -> np.ndarray:
+        """Per value: the smallest document number marked in any of ``tables``, or -1."""
+        marks = np.full(self.values.size, kernels.UNSEEN, dtype=np.uint64)
+        for table in tables:
+            np.minimum(marks, table[self.slot_of, 1], out=marks)
+        first = marks.astype(np.int64)
+        first[marks >= kernels.UNSEEN] = -1
+        return first
+
+    def mark(self, table: np.ndarray, index: np.ndarray, documents: np.ndarray) -> None:
+        """Lower the marks of values ``index`` to ``documents`` (each index once)."""
+        rows = self.slot_of[index]
+        table[rows, 1] = np.minimum(table[rows, 1], documents.astype(np.uint64))
 
     def find(self, hashes: np.ndarray) -> np.ndarray:
         """Index in ``values`` of each hash, or -1 (compiled)."""
         hashes = np.ascontiguousarray(hashes, dtype=np.uint64)
-        found: np.ndarray = kernels.find_sorted(hashes, self.bits, self.shift, self.mask, self.values)
+        found: np.ndarray = kernels.find_sorted(hashes, self.bits, self.shift, self.values)
         return found
 
     def find_reference(self, hashes: np.ndarray) -> np.ndarray:
@@ -509,15 +546,20 @@ class NgramSet:
 
 
 @functools.lru_cache(maxsize=8)
-def _id_tables(size: int, specials: frozenset[int]) -> tuple[np.ndarray, np.ndarray]:
-    """Per id below ``size``: its lowercase byte and its kind code for :func:`scan_tokens`."""
+def _id_tables(size: int, specials: frozenset[int]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per id below ``size``: its lowercase byte, its kind code and its byte constant (0 unless a word byte).
+
+    The tables of :mod:`corpusprep.ngram_kernels`.
+    """
     lower, separator, _ = _lookup(size)
     kind = np.where(separator, kernels.SEPARATOR, kernels.WORD_BYTE).astype(np.uint8)
     for value in specials:
         if 0 <= value < size:
             kind[value] = kernels.SPECIAL
-    kind.flags.writeable = False
-    return lower, kind
+    terms = np.where(kind == kernels.WORD_BYTE, _constants_array()[lower], np.uint64(0)).astype(np.uint64)
+    for table in (kind, terms):
+        table.flags.writeable = False
+    return lower, kind, terms
 
 
 def _contiguous_ids(tokens: np.ndarray) -> np.ndarray:
@@ -528,10 +570,17 @@ def _contiguous_ids(tokens: np.ndarray) -> np.ndarray:
 
 
 def _table_size(tokens: np.ndarray, tables: StreamTables) -> int:
-    top = max(255, *tables.specials) if tables.specials else 255
+    top = max(255, tables.end_of_document, *tables.specials)
     if tokens.dtype.kind == "u" and tokens.dtype.itemsize <= 2:
         return max(1 << (8 * tokens.dtype.itemsize), top + 1)
     return max(int(tokens.max()) + 1 if tokens.size else 0, top + 1)
+
+
+def document_count(tokens: np.ndarray, end_of_document: int) -> int:
+    """Documents of a chunk as :func:`hash_stream_chunk` counts them (a last one without an end too)."""
+    tokens = _contiguous_ids(tokens)
+    ends = int(kernels.census(tokens, end_of_document)[0])
+    return ends + int(bool(tokens.size) and int(tokens[-1]) != end_of_document)
 
 
 def scan_chunk(
@@ -539,17 +588,18 @@ def scan_chunk(
     tables: StreamTables,
     ngram: int,
     members: NgramSet,
-    first_train: np.ndarray,
+    marks: np.ndarray,
     document_base: int,
 ) -> np.ndarray:
     """Look every word n-gram of a run of documents up in ``members``; the documents' lengths.
 
-    For each n-gram found at index ``j`` of ``members.values``, ``first_train[j]``
+    For each n-gram of ``members``, its mark in ``marks`` (:meth:`NgramSet.new_marks`)
     becomes the smallest document number that holds it (``document_base`` plus the
-    chunk-local document, counted as in :func:`hash_stream_chunk`; -1 means none
-    yet). Returns the token counts of the chunk's documents without special ids. The
-    same result as hashing the chunk with :func:`hash_stream_chunk` and looking its
-    hashes up; with the byte tokenizer it is one compiled pass
+    chunk-local document, counted as in :func:`hash_stream_chunk`); read them with
+    :meth:`NgramSet.first_documents`. Returns the token counts of the chunk's documents
+    without special ids. The same result as hashing the chunk with
+    :func:`hash_stream_chunk` and looking its hashes up; with the byte tokenizer it is
+    one compiled pass
     (:func:`corpusprep.ngram_kernels.scan_tokens`).
     """
     if ngram < 1:
@@ -561,13 +611,10 @@ def scan_chunk(
         hit = np.flatnonzero(position >= 0)
         if hit.size:
             indices, first = np.unique(position[hit], return_index=True)
-            documents = chunk.document[chunk.first_word[hit[first]]] + document_base
-            seen = first_train[indices]
-            fresh = (seen < 0) | (documents < seen)
-            first_train[indices[fresh]] = documents[fresh]
+            members.mark(marks, indices, chunk.document[chunk.first_word[hit[first]]] + document_base)
         return chunk.lengths
     size = _table_size(tokens, tables)
-    lower, kind = _id_tables(size, tables.specials)
+    _, kind, terms = _id_tables(size, tables.specials)
     ends, wide = kernels.census(tokens, tables.end_of_document)
     documents = int(ends) + int(bool(tokens.size) and int(tokens[-1]) != tables.end_of_document)
     lengths = np.zeros(documents, dtype=np.int64)
@@ -589,20 +636,18 @@ def scan_chunk(
         run_words = kernels.word_hashes(np.frombuffer(b" ".join(words), dtype=np.uint8), _constants_array())
     kernels.scan_tokens(
         tokens,
-        lower,
+        terms,
         kind,
         tables.end_of_document,
         run_begin,
         run_end,
         run_offsets,
         run_words,
-        _constants_array(),
         ngram,
         members.bits,
         members.shift,
-        members.mask,
-        members.values,
-        first_train,
+        marks,
+        members.slot_mask,
         document_base,
         lengths,
     )
@@ -623,5 +668,5 @@ def warm_up(token_dtypes: Sequence[np.dtype[Any] | type] = (np.uint16,)) -> floa
         tokens = np.array([*"Été b".encode(), _TEXT_END], dtype=dtype)
         tables = StreamTables(end_of_document=_TEXT_END, specials=frozenset({_TEXT_END}), byte_ids=True)
         hash_stream_chunk(tokens, tables, 1)
-        scan_chunk(tokens, tables, 1, members, np.full(members.values.size, -1, dtype=np.int64), 0)
+        scan_chunk(tokens, tables, 1, members, members.new_marks(), 0)
     return time.perf_counter() - started

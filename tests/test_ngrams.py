@@ -24,6 +24,7 @@ from corpusprep.audit_leakage import ngram_overlap
 from corpusprep.ngrams import (
     NgramSet,
     StreamTables,
+    byte_separators,
     complete_documents,
     distinct_and_index,
     hash_normalised,
@@ -219,8 +220,9 @@ def test_compiled_hashing_equals_numpy_and_scalar(texts: list[str], n: int) -> N
     python = hash_texts_python(texts, n)
     assert python.hashes.tolist() == expected
     separator = python.data == ord(" ")
+    assert np.array_equal(byte_separators(python.data), separator)
     boundary = np.zeros(python.data.size, dtype=bool)
-    compiled = hash_normalised_compiled(python.data, separator, boundary, n)
+    compiled = hash_normalised_compiled(python.data, boundary, n)
     reference = hash_normalised(python.data, separator, boundary, n)
     for left, right in zip(compiled, reference, strict=True):
         assert left.dtype == right.dtype and left.tolist() == right.tolist()
@@ -236,19 +238,24 @@ def test_compiled_hashing_equals_numpy_and_scalar(texts: list[str], n: int) -> N
 
 @settings(max_examples=100, deadline=None)
 @given(
-    data=st.binary(max_size=60),
+    data=st.binary(max_size=60).map(lambda raw: raw.replace(b"\x00", b" ")),
     cuts=st.lists(st.integers(0, 60), max_size=4),
     n=st.integers(1, 4),
 )
 def test_compiled_word_spans_equal_numpy(data: bytes, cuts: list[int], n: int) -> None:
-    """Any separator mask and document ends (not only those of real text): same spans and hashes."""
+    """Any bytes and document ends (not only those of real text): same spans and hashes."""
     values = np.frombuffer(data, dtype=np.uint8)
-    separator = values % 3 == 0
+    separator = byte_separators(values)
+    # ASCII whitespace and punctuation separate (Python's str.isspace and unicodedata), nothing else
+    expected = [
+        chr(b).isspace() or unicodedata.category(chr(b)).startswith("P") if b < 128 else False for b in data
+    ]
+    assert separator.tolist() == expected
     boundary = np.zeros(values.size, dtype=bool)
     for cut in cuts:
-        if cut < values.size:
-            boundary[cut] = separator[cut] = True
-    compiled = hash_normalised_compiled(values, separator, boundary, n)
+        if cut < values.size and separator[cut]:
+            boundary[cut] = True
+    compiled = hash_normalised_compiled(values, boundary, n)
     reference = hash_normalised(values, separator, boundary, n)
     assert [part.tolist() for part in compiled] == [part.tolist() for part in reference]
 
@@ -272,15 +279,16 @@ def test_scan_chunk_equals_hash_and_lookup(
     if tail and stream.size:
         stream = stream[:-1]  # a last document without its end id
     for tables in (TABLES, StreamTables(end_of_document=EOD, specials=frozenset({EOD}), byte_ids=True)):
-        fast = np.full(members.values.size, -1, dtype=np.int64)
-        slow = fast.copy()
+        marks = members.new_marks()
+        slow = np.full(members.values.size, -1, dtype=np.int64)
         fast_lengths = []
         slow_lengths = []
         offset = base
         for chunk in complete_documents([stream[i : i + cut] for i in range(0, stream.size, cut)], EOD):
-            fast_lengths.append(scan_chunk(chunk, tables, n, members, fast, offset))
+            fast_lengths.append(scan_chunk(chunk, tables, n, members, marks, offset))
             slow_lengths.append(_numpy_scan(chunk, tables, n, members, slow, offset))
             offset += slow_lengths[-1].size
+        fast = members.first_documents(marks)
         assert fast.tolist() == slow.tolist()
         assert [x.tolist() for x in fast_lengths] == [x.tolist() for x in slow_lengths]
     # brute force: an evaluation n-gram is found iff some train text holds it
