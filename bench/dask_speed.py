@@ -3,16 +3,18 @@
 Run: ``.venv/bin/python bench/dask_speed.py [--corpus DIR] [--workers N] [--definition TOML]``.
 
 The corpus is the ``base/`` folder written by ``bench/make_corpus.py`` (Python documentation
-sources and Debian licence texts); build it first with
-``.venv/bin/python bench/make_corpus.py bench/corpora``. Each engine runs in a fresh Python
-process so peak memory figures do not mix:
+sources and Debian licence texts; ``--corpus bench/corpora`` takes base plus its perturbed
+copies, 4x); build it first with ``.venv/bin/python bench/make_corpus.py bench/corpora``.
+Each engine runs in a fresh Python process so peak memory figures do not mix:
 
-- local: ``run_pipeline(workers=N)``, a process pool of N workers;
+- local: ``corpusprep.pool.local_engine(N)``, the one process pool of N workers that
+  ``run_pipeline(workers=N)`` keeps for a whole run;
 - dask: ``corpusprep.engine_dask.dask_engine(None, N)``, a LocalCluster of N worker processes
   with one thread each on 127.0.0.1 (what ``corpusprep run --engine dask`` starts).
 
 Printed per engine: wall time of the run (and, for Dask, the cluster start-up apart), the
-time of each phase (the two mapped passes, the driver barriers between and after them), peak
+time and task count of each mapped phase (first pass, exact-duplicate partitions, LSH band
+groups, pair checks, encoding, shard writing) and of the driver working alone between them, peak
 memory of the driver and of the workers, both as ``resource.getrusage`` ``ru_maxrss`` and as
 ``VmHWM`` (see :func:`_high_water_mib` for why they differ): for Dask read on every worker with
 ``Client.run`` and on the scheduler with ``Client.run_on_scheduler`` (a LocalCluster's scheduler
@@ -80,13 +82,36 @@ def _measured(function: Callable[[Any], Any], item: Any) -> tuple[Any, float, fl
     return result, _peak_rss_mib(), _high_water_mib()
 
 
+#: Mapped task function -> the phase it belongs to.
+_MAPPED_PHASES = {
+    "prepare_batch": "first pass: read, clean, hashes, signatures (mapped)",
+    "_exact_partition": "exact duplicates: key partitions (mapped)",
+    "_band_task": "near duplicates: LSH band groups (mapped)",
+    "_estimate_task": "near duplicates: pair checks (mapped)",
+    "_exact_task": "near duplicates: pair checks (mapped)",
+    "encode_texts": "encode (mapped)",
+    "_pack_shard": "pack: shard tasks (mapped)",
+}
+_DRIVER_ONLY = "driver alone: staging, union-find, split, tokenizer training, ledger, manifest"
+
+
+def _name(function: Callable[[Any], Any]) -> str:
+    return str(getattr(getattr(function, "func", function), "__name__", "?"))
+
+
 class _PhaseClock:
-    """Wraps a mapper and notes when each map starts and ends, to cut the run into phases."""
+    """Wraps a mapper and notes when each map starts and ends, to cut the run into phases.
+
+    A mapped phase's wall time runs from the start of its first map to the end of its
+    last one (the driver's own work inside it, such as writing the staged documents, is
+    included); everything between maps is the driver working alone.
+    """
 
     def __init__(self, mapper: Callable[[Callable[[Any], Any], Iterable[Any]], Iterator[Any]]) -> None:
         self.inner = mapper
         self.marks: list[float] = []
         self.cpu_marks: list[float] = []
+        self.maps: list[tuple[str, float, float, float, float, int]] = []
         self.worker_maxrss = 0.0
         self.worker_hwm = 0.0
 
@@ -95,28 +120,37 @@ class _PhaseClock:
         self.cpu_marks.append(time.process_time())
 
     def __call__(self, function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
-        self.mark()
+        name = _name(function)
+        wall, cpu, count = time.perf_counter(), time.process_time(), 0
         for result, maxrss, hwm in self.inner(functools.partial(_measured, function), items):
             self.worker_maxrss = max(self.worker_maxrss, maxrss)
             self.worker_hwm = max(self.worker_hwm, hwm)
+            count += 1
             yield result
-        self.mark()
+        self.maps.append((name, wall, time.perf_counter(), cpu, time.process_time(), count))
 
-    def phases(self) -> dict[str, tuple[float, float]]:
-        """Phase name -> (wall seconds, CPU seconds of the driver process, all its threads)."""
-        if len(self.marks) != 6:
-            return {"whole run": (self.marks[-1] - self.marks[0], self.cpu_marks[-1] - self.cpu_marks[0])}
-        names = (
-            "setup before the first pass",
-            "first pass (read, clean, hashes, signatures; mapped)",
-            "barriers: exact, near, split, tokenizer training (driver)",
-            "encode (mapped)",
-            "pack, ledger, signatures, manifest (driver)",
-        )
-        return {
-            name: (self.marks[i + 1] - self.marks[i], self.cpu_marks[i + 1] - self.cpu_marks[i])
-            for i, name in enumerate(names)
+    def phases(self) -> dict[str, tuple[float, float, int]]:
+        """Phase name -> (wall seconds, driver CPU seconds (all its threads), tasks)."""
+        totals: dict[str, list[float]] = {}
+        for name, wall_start, wall_end, cpu_start, cpu_end, count in self.maps:
+            phase = _MAPPED_PHASES.get(name, f"{name} (mapped)")
+            entry = totals.setdefault(phase, [0.0, 0.0, 0])
+            entry[0] += wall_end - wall_start
+            entry[1] += cpu_end - cpu_start
+            entry[2] += count
+        run_wall = self.marks[-1] - self.marks[0]
+        run_cpu = self.cpu_marks[-1] - self.cpu_marks[0]
+        alone = [
+            run_wall - sum(v[0] for v in totals.values()),
+            run_cpu - sum(v[1] for v in totals.values()),
+            0,
+        ]
+        ordered = {
+            phase: totals[phase] for phase in dict.fromkeys(_MAPPED_PHASES.values()) if phase in totals
         }
+        ordered.update({phase: value for phase, value in totals.items() if phase not in ordered})
+        ordered[_DRIVER_ONLY] = alone
+        return {phase: (value[0], value[1], int(value[2])) for phase, value in ordered.items()}
 
 
 def _tree_digest(folder: Path) -> str:
@@ -131,15 +165,16 @@ def _one(engine: str, corpus: Path, definition_path: Path, output: Path, workers
     """One run in this process; returns its figures."""
     from corpusprep.definition import load_definition
     from corpusprep.pipeline import run_pipeline
-    from corpusprep.pool import local_mapper
+    from corpusprep.pool import local_engine
 
     definition = load_definition(definition_path).with_folders(input=corpus, output=output)
     figures: dict[str, Any] = {"engine": engine, "workers": workers}
     if engine == "local":
-        clock = _PhaseClock(local_mapper(workers))
-        clock.mark()
-        result = run_pipeline(definition, mapper=clock)
-        clock.mark()
+        with local_engine(workers) as mapper:  # what run_pipeline(workers=N) uses: one pool per run
+            clock = _PhaseClock(mapper)
+            clock.mark()
+            result = run_pipeline(definition, mapper=clock)
+            clock.mark()
         figures["peak_mib"] = {
             "driver": (_peak_rss_mib(), _high_water_mib()),
             "largest pool worker": (clock.worker_maxrss, clock.worker_hwm),
@@ -199,10 +234,10 @@ def _show(figures: dict[str, Any]) -> None:
     if "cluster_start_s" in figures:
         print(f" (+ {figures['cluster_start_s']:.2f} s starting the cluster)", end="")
     print()
-    print("      wall  share  driver CPU  phase")
-    for name, (seconds, cpu) in figures["phases_s"].items():
+    print("      wall  share  driver CPU   tasks  phase")
+    for name, (seconds, cpu, tasks) in figures["phases_s"].items():
         share = seconds / figures["run_s"] * 100 if figures["run_s"] else 0.0
-        print(f"  {seconds:8.2f} s {share:5.1f} % {cpu:8.2f} s  {name}")
+        print(f"  {seconds:8.2f} s {share:5.1f} % {cpu:8.2f} s {tasks:7d}  {name}")
     print("  peak memory (MiB): getrusage ru_maxrss / VmHWM")
     for name, (maxrss, hwm) in figures["peak_mib"].items():
         print(f"  {maxrss:8.1f} / {hwm:8.1f}  {name}")

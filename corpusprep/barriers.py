@@ -35,6 +35,7 @@ at the corpus sizes measured (see the README's cluster section).
 
 from __future__ import annotations
 
+import itertools
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -62,8 +63,9 @@ __all__ = [
 EXACT_PARTITION_ROWS = 1 << 20
 #: Pairs in one pair-check task.
 PAIRS_PER_TASK = 1 << 17
-#: Exact-Jaccard pairs in one task (each pair may re-shingle two documents).
-EXACT_PAIRS_PER_TASK = 1 << 13
+#: Exact-Jaccard pairs in one task. Each pair may re-shingle two documents (milliseconds each for
+#: long ones), so tasks are kept small enough for the workers to share the step evenly.
+EXACT_PAIRS_PER_TASK = 1 << 9
 #: Band tasks per map: enough to keep every worker busy, few enough that each reads the store rarely.
 BAND_TASKS = 8
 
@@ -196,9 +198,26 @@ class MappedPairWork:
         return self._map(_estimate_task, items)
 
     def exact(self, pairs: np.ndarray) -> np.ndarray:
-        staged = self.rows[pairs] if len(pairs) else pairs
-        items = [
-            (self.documents, self.config, chunk)
-            for chunk in _chunks(staged, self.exact_pairs_per_task or EXACT_PAIRS_PER_TASK)
-        ]
-        return self._map(_exact_task, items)
+        """Exact Jaccard of each pair; pairs that share a first document go to the same task.
+
+        A task shingles each document it meets once (:func:`corpusprep.near.exact_similarity`
+        keeps a cache), so the pairs are sorted by their first document and cut only
+        where it changes, keeping a cluster's representative with its members; the
+        results are put back in the order of ``pairs``.
+        """
+        if not len(pairs):
+            return np.empty(0, dtype=np.float64)
+        order = np.lexsort((pairs[:, 1], pairs[:, 0]))
+        staged = self.rows[pairs[order]]
+        size = self.exact_pairs_per_task or EXACT_PAIRS_PER_TASK
+        new_first = np.flatnonzero(np.diff(staged[:, 0])) + 1  # where the first document changes
+        cuts, last = [], 0
+        for cut in new_first.tolist():
+            if cut - last >= size:
+                cuts.append(cut)
+                last = cut
+        bounds = [0, *cuts, len(staged)]
+        items = [(self.documents, self.config, staged[a:b]) for a, b in itertools.pairwise(bounds)]
+        out = np.empty(len(pairs), dtype=np.float64)
+        out[order] = self._map(_exact_task, items)
+        return out
