@@ -2,7 +2,7 @@
 
 ::
 
-    python bench/audit_speed.py OUTPUT_OR_CORPUS [--documents 10000] [--ngram 13]
+    python bench/audit_speed.py OUTPUT_OR_CORPUS [--documents 10000] [--ngram 13] [--workers 1] [--repeat 1]
 
 ``OUTPUT_OR_CORPUS`` is a finished output folder (it holds ``manifest.json``) or a
 benchmark corpus made by ``bench/make_corpus.py`` (it holds ``base/``); for a corpus the
@@ -17,10 +17,17 @@ an outside evaluation set, together with the output's own validation and test sp
 Figures (``measure``):
 
 * ``read`` — train tokens per second to memory-map every train shard and touch every
-  token (a sum over blocks of windows); the floor any stream check pays;
+  token (a sum over blocks of windows), warm page cache; the floor any stream check pays,
+  and the reference of the ratio;
+* ``read_cold`` — the same after ``posix_fadvise(DONTNEED)`` on each shard (the kernel may
+  drop its cached pages), as a disk read would be; an extra line, not the reference;
+* ``kernels`` — seconds to compile the numba kernels with an empty cache (in a fresh
+  process), and to load them from the on-disk cache in this one (``warm_up``), paid once
+  per process before the first call; not part of the ``ngram`` time;
 * ``ngram`` — train tokens per second of :func:`corpusprep.audit_leakage.ngram_overlap`
-  (rebuilding the streams, hashing every word n-gram, looking train up in the
-  evaluation set), and its ratio to ``read`` (target >= 0.3);
+  (rebuilding the streams, hashing every word n-gram of the evaluation side and of train,
+  looking train up in the evaluation set, writing the findings), its ratio to ``read``
+  (target >= 0.3), and nanoseconds per train token of each pass and of reading;
 * peak RSS of the process (``resource.getrusage``, kB on Linux) after each step.
 
 Run it with a warm page cache (the read step runs first and warms it).
@@ -30,6 +37,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import subprocess
 import sys
@@ -65,6 +73,44 @@ def read_only(output: Path, *, chunk_rows: int = 4096) -> dict[str, Any]:
     return {"tokens": tokens, "seconds": seconds, "tokens_per_second": tokens / seconds, "checksum": checksum}
 
 
+def read_cold(output: Path, *, chunk_rows: int = 4096) -> dict[str, Any]:
+    """:func:`read_only` after asking the kernel to drop each train shard's cached pages."""
+    manifest = json.loads((output / "manifest.json").read_text(encoding="utf-8"))
+    for shard in manifest["splits"]["train"]["shards"]:
+        descriptor = os.open(output / shard["file"], os.O_RDONLY)
+        try:
+            os.posix_fadvise(descriptor, 0, 0, os.POSIX_FADV_DONTNEED)
+        finally:
+            os.close(descriptor)
+    return read_only(output, chunk_rows=chunk_rows)
+
+
+_COMPILE = """
+import time
+started = time.perf_counter()
+from corpusprep.ngrams import warm_up
+imported = time.perf_counter()
+warm_up()
+print(imported - started, time.perf_counter() - imported)
+"""
+
+
+def kernel_seconds() -> dict[str, float]:
+    """Compile time of the kernels with an empty numba cache (fresh process), load time here."""
+    with tempfile.TemporaryDirectory() as cache:
+        done = subprocess.run(
+            [sys.executable, "-c", _COMPILE],
+            check=True,
+            capture_output=True,
+            text=True,
+            env={**os.environ, "NUMBA_CACHE_DIR": cache},
+        )
+    imported, compiled = (float(value) for value in done.stdout.split())
+    from corpusprep.ngrams import warm_up
+
+    return {"import_seconds": imported, "compile_seconds_cold": compiled, "load_seconds_cached": warm_up()}
+
+
 def evaluation_items(corpus: Path | None, count: int, folder: Path) -> Path:
     """Write ``count`` paragraphs of at least 40 words from the corpus as JSON Lines."""
     path = folder / "evaluation.jsonl"
@@ -89,16 +135,20 @@ def evaluation_items(corpus: Path | None, count: int, folder: Path) -> Path:
     return path
 
 
-def measure(output: Path, *, evaluation: Path | None = None, ngram: int = 13) -> dict[str, Any]:
+def measure(
+    output: Path, *, evaluation: Path | None = None, ngram: int = 13, workers: int = 1, repeat: int = 1
+) -> dict[str, Any]:
     """Read-only and n-gram-check throughput on the train shards of ``output``, and peak RSS."""
     from corpusprep.audit import AuditConfig, _cleaned_items, read_items
     from corpusprep.audit_integrity import check_integrity
     from corpusprep.audit_leakage import ngram_overlap, packed_rows
     from corpusprep.ngrams import StreamTables
 
-    figures: dict[str, Any] = {"output": str(output)}
-    figures["read"] = read_only(output)
+    figures: dict[str, Any] = {"output": str(output), "workers": workers, "repeat": repeat}
+    figures["read_cold"] = read_cold(output)
+    figures["read"] = min((read_only(output) for _ in range(repeat)), key=lambda run: run["seconds"])
     figures["read"]["peak_rss_mb"] = _peak_rss_mb()
+    figures["kernels"] = kernel_seconds()
 
     state = check_integrity(output)
     if state.ledger is None or state.manifest is None or any(v is None for v in state.shards.values()):
@@ -125,22 +175,36 @@ def measure(output: Path, *, evaluation: Path | None = None, ngram: int = 13) ->
     seed = int(manifest["definition"]["pack"]["seed"])
     shards = {split: list(files or []) for split, files in state.shards.items()}
     packed = {split: packed_rows(state.ledger, split, seed) for split in shards}
-    rss_before = _peak_rss_mb()
-    started = time.perf_counter()
-    result = ngram_overlap(
-        shards=shards,
-        packed=packed,
-        ledger=state.ledger,
-        tables=tables,
-        ngram=config.ngram,
-        pad_id=specials["pad"],
-        tail=manifest["windows"]["tail"],
-        against=items,
-        chunk_rows=config.chunk_rows(int(manifest["windows"]["stored_length"])),
+    ledger_tokens = np.asarray(
+        [value or 0 for value in state.ledger.column("tokens").to_pylist()], dtype=np.int64
     )
-    seconds = time.perf_counter() - started
+    rss_before = _peak_rss_mb()
+    seconds = float("inf")
+    for _ in range(repeat):
+        started = time.perf_counter()
+        run = ngram_overlap(
+            shards=shards,
+            packed=packed,
+            ledger=state.ledger,
+            tables=tables,
+            ngram=config.ngram,
+            pad_id=specials["pad"],
+            tail=manifest["windows"]["tail"],
+            against=items,
+            chunk_rows=config.chunk_rows(int(manifest["windows"]["stored_length"])),
+            workers=workers,
+        )
+        if time.perf_counter() - started < seconds:
+            seconds, result = time.perf_counter() - started, run
     train_tokens = int(figures["read"]["tokens"])  # same stored tokens as the read step
     sides = result.statistics["sides"]
+    passes = result.statistics["pass_seconds"]
+    figures["ns_per_train_token"] = {
+        "read": 1e9 * figures["read"]["seconds"] / train_tokens,
+        "read_cold": 1e9 * figures["read_cold"]["seconds"] / train_tokens,
+        **{f"ngram_{name}": 1e9 * value / train_tokens for name, value in passes.items()},
+        "ngram": 1e9 * seconds / train_tokens,
+    }
     figures["ngram"] = {
         "seconds": seconds,
         "train_tokens_per_second": train_tokens / seconds,
@@ -148,6 +212,12 @@ def measure(output: Path, *, evaluation: Path | None = None, ngram: int = 13) ->
         "pass_seconds": result.statistics["pass_seconds"],
         "train_pass_tokens_per_second": train_tokens / result.statistics["pass_seconds"]["train"],
         "evaluation_documents": sum(side["documents"] for side in sides.values()),
+        "evaluation_tokens": {
+            "validation_test": int(
+                sum(ledger_tokens[packed[split]].sum() for split in packed if split != "train")
+            ),
+            "against_utf8_bytes": sum(len(text.encode("utf-8")) for _, text in items),
+        },
         "evaluation_distinct_ngrams": result.statistics["evaluation_distinct_ngrams"],
         "flagged": {name: side["documents_sharing_ngrams"] for name, side in sides.items()},
         "peak_rss_mb_before": rss_before,
@@ -180,11 +250,17 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("target", type=Path, help="an output folder or a bench corpus folder")
     parser.add_argument("--documents", type=int, default=10_000, help="evaluation paragraphs (default 10000)")
     parser.add_argument("--ngram", type=int, default=13, help="words per n-gram (default 13)")
+    parser.add_argument("--workers", type=int, default=1, help="threads for the train scan (default 1)")
+    parser.add_argument(
+        "--repeat", type=int, default=1, help="runs of the read and of the check; the fastest of each counts"
+    )
     args = parser.parse_args(argv)
     with tempfile.TemporaryDirectory() as scratch:
         output, corpus = _output_for(args.target.resolve(), Path(scratch))
         evaluation = evaluation_items(corpus, args.documents, Path(scratch)) if corpus is not None else None
-        figures = measure(output, evaluation=evaluation, ngram=args.ngram)
+        figures = measure(
+            output, evaluation=evaluation, ngram=args.ngram, workers=args.workers, repeat=args.repeat
+        )
     print(json.dumps(figures, indent=2))
     return 0
 

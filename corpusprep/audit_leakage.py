@@ -18,9 +18,10 @@ integrity checks):
     a validation or test document sharing at least one word n-gram (13 by
     default, Brown et al. 2020 App. C, from memory) with train; see
     :mod:`corpusprep.ngrams`. The token stream of each split is rebuilt from
-    its shards; the evaluation side's n-gram hashes are held as one sorted
-    ``uint64`` array, and train is streamed through memory-mapped shards in
-    chunks, so memory follows the evaluation side, not train.
+    its shards; the evaluation side's distinct n-gram hashes are held in a hash
+    table behind a bit filter (:class:`corpusprep.ngrams.NgramSet`), and train is
+    streamed through memory-mapped shards in chunks, so memory follows the
+    evaluation side, not train.
 
 Against an outside evaluation set (``against_*`` kinds): each item is cleaned
 with the output's clean settings, then compared with train by exact text hash,
@@ -53,7 +54,6 @@ from corpusprep.ngrams import (
     NgramSet,
     StreamTables,
     complete_documents,
-    distinct_and_index,
     document_count,
     hash_stream_chunk,
     hash_texts,
@@ -417,8 +417,8 @@ def ngram_overlap(
                 side.name, found, ledger_tokens[packed[side.name]], side.record_ids, tail
             )
     every = [chunk.hashes for side in sides for chunk in held[side.name]]
-    evaluation, where = distinct_and_index(np.concatenate(every) if every else np.zeros(0, np.uint64))
-    members = NgramSet(evaluation)
+    members = NgramSet(np.concatenate(every) if every else np.zeros(0, np.uint64))
+    where = members.index
 
     # Pass 2: stream train; remember the first train document holding each evaluation n-gram.
     clock.append(time.perf_counter())
@@ -444,7 +444,7 @@ def ngram_overlap(
         "ngram": ngram,
         "train_documents": train_documents,
         "train_tokens": train_tokens,
-        "evaluation_distinct_ngrams": int(evaluation.size),
+        "evaluation_distinct_ngrams": int(members.values.size),
         "matched_distinct_ngrams": int(np.count_nonzero(first_train >= 0)),
         "contaminated_at": contaminated_at,
         "sides": {},

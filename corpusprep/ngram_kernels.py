@@ -24,13 +24,14 @@ import numpy as np
 
 __all__ = [
     "build_marks",
+    "build_set",
     "census",
-    "distinct_index",
     "documents",
-    "find_sorted",
+    "find_marked",
     "hash_words",
     "normalise_tokens",
     "scan_tokens",
+    "splice",
     "wide_runs",
     "word_hashes",
 ]
@@ -80,22 +81,6 @@ def _maybe(bits: np.ndarray, shift: np.uint64, value: np.uint64) -> bool:
     pattern = (_ONE << (value & _LOW6)) | (_ONE << ((value >> _SIX) & _LOW6))
     found: bool = bits[value >> shift] & pattern == pattern
     return found
-
-
-@_inline
-def _position(values: np.ndarray, value: np.uint64) -> int:
-    """Index of ``value`` in the sorted ``values``, or -1."""
-    low = 0
-    high = values.size
-    while low < high:
-        middle = (low + high) >> 1
-        if values[middle] < value:
-            low = middle + 1
-        else:
-            high = middle
-    if low < values.size and values[low] == value:
-        return low
-    return -1
 
 
 @_jit
@@ -154,6 +139,44 @@ def normalise_tokens(tokens: np.ndarray, lower: np.ndarray) -> np.ndarray:
 
 
 @_jit
+def splice(
+    data: np.ndarray,
+    boundary: np.ndarray,
+    begins: np.ndarray,
+    ends: np.ndarray,
+    pieces: np.ndarray,
+    offsets: np.ndarray,
+) -> tuple[np.ndarray, np.ndarray]:
+    """``data`` with each run ``begins[r]:ends[r]`` replaced by ``pieces[offsets[r]:offsets[r + 1]]``.
+
+    Sorted, disjoint runs; ``boundary`` follows (False inside the pieces).
+    """
+    removed = 0
+    for r in range(begins.size):
+        removed += ends[r] - begins[r]
+    size = data.size - removed + pieces.size
+    out = np.empty(size, dtype=np.uint8)
+    flags = np.empty(size, dtype=np.bool_)
+    source = 0
+    target = 0
+    for r in range(begins.size + 1):
+        stop = begins[r] if r < begins.size else data.size
+        count = stop - source
+        out[target : target + count] = data[source:stop]
+        flags[target : target + count] = boundary[source:stop]
+        target += count
+        if r == begins.size:
+            break
+        first = offsets[r]
+        count = offsets[r + 1] - first
+        out[target : target + count] = pieces[first : first + count]
+        flags[target : target + count] = False
+        target += count
+        source = ends[r]
+    return out, flags
+
+
+@_jit
 def word_hashes(data: np.ndarray, constants: np.ndarray) -> np.ndarray:
     """Word hashes of normalised bytes whose only separator is the space (0x20)."""
     out = np.empty((data.size + 1) // 2, dtype=np.uint64)
@@ -209,6 +232,25 @@ def _record(
 
 
 @_jit
+def _insert_all(values: np.ndarray, count: int, slot_bits: int, slot_of: np.ndarray) -> np.ndarray:
+    """A table of ``2^slot_bits`` rows holding ``values[:count]`` in order, mark = value's index."""
+    slot_mask = (1 << slot_bits) - 1
+    marks = np.empty((1 << slot_bits, 2), dtype=np.uint64)
+    for row in range(1 << slot_bits):
+        marks[row, 0] = _ZERO
+        marks[row, 1] = EMPTY
+    for j in range(count):
+        value = values[j]
+        slot = _home(value, slot_mask)
+        while marks[slot, 1] != EMPTY:
+            slot = (slot + 1) & slot_mask
+        marks[slot, 0] = value
+        marks[slot, 1] = np.uint64(j)
+        slot_of[j] = slot
+    return marks
+
+
+@_jit
 def build_marks(values: np.ndarray, slot_bits: int) -> tuple[np.ndarray, np.ndarray]:
     """An open-addressing table (linear probing) of distinct ``values``, and the slot of each.
 
@@ -216,20 +258,10 @@ def build_marks(values: np.ndarray, slot_bits: int) -> tuple[np.ndarray, np.ndar
     :data:`UNSEEN` until a document number lowers it. A value's home slot is taken from
     bits 12 and up, which the bit filter does not use for tables below ``2^(64 - 12)``.
     """
-    slots = 1 << slot_bits
-    slot_mask = slots - 1
-    marks = np.empty((slots, 2), dtype=np.uint64)
-    marks[:, 0] = _ZERO
-    marks[:, 1] = EMPTY
     slot_of = np.empty(values.size, dtype=np.int64)
-    for j in range(values.size):
-        value = values[j]
-        slot = _home(value, slot_mask)
-        while marks[slot, 1] != EMPTY:
-            slot = (slot + 1) & slot_mask
-        marks[slot, 0] = value
-        marks[slot, 1] = UNSEEN
-        slot_of[j] = slot
+    marks = _insert_all(values, values.size, slot_bits, slot_of)
+    for k in range(values.size):
+        marks[slot_of[k], 1] = UNSEEN
     return marks, slot_of
 
 
@@ -289,13 +321,8 @@ def hash_words(
             first_word[grams] = words - ngram + 1
             grams += 1
         words += 1
-    return (
-        starts[:words].copy(),
-        ends[:words].copy(),
-        document[:words].copy(),
-        hashes[:grams].copy(),
-        first_word[:grams].copy(),
-    )
+    # views: the pages past the used part were never touched, so they hold no memory
+    return starts[:words], ends[:words], document[:words], hashes[:grams], first_word[:grams]
 
 
 @_jit
@@ -392,37 +419,66 @@ def scan_tokens(
 
 
 @_jit
-def distinct_index(values: np.ndarray, order: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The distinct values in ascending order, and the index in them of each value.
+def build_set(
+    hashes: np.ndarray, slot_bits: int
+) -> tuple[np.ndarray, int, np.ndarray, np.ndarray, np.ndarray]:
+    """Distinct ``hashes`` in a table of marks that grows to stay at most 2/3 full.
 
-    ``order`` sorts ``values`` (``np.argsort``).
+    Returns ``marks, slot_bits, values, slot_of, index``: the table (as
+    :func:`build_marks` builds it from ``values``, every mark :data:`UNSEEN`), its size,
+    the distinct hashes in order of first occurrence, the slot of each, and for each
+    hash its position in ``values``.
     """
-    size = values.size
-    distinct = np.empty(size, dtype=np.uint64)
-    index = np.empty(size, dtype=np.int64)
-    count = -1
-    previous = _ZERO
-    for k in range(size):
-        at = order[k]
-        value = values[at]
-        if count < 0 or value != previous:
-            count += 1
-            distinct[count] = value
-            previous = value
-        index[at] = count
-    return distinct[: count + 1].copy(), index
+    values = np.empty(hashes.size, dtype=np.uint64)
+    slot_of = np.empty(hashes.size, dtype=np.int64)
+    index = np.empty(hashes.size, dtype=np.int64)
+    marks = _insert_all(values, 0, slot_bits, slot_of)
+    slot_mask = (1 << slot_bits) - 1
+    limit = (2 << slot_bits) // 3
+    count = 0
+    for j in range(hashes.size):
+        value = hashes[j]
+        slot = _home(value, slot_mask)
+        while True:
+            state = marks[slot, 1]
+            if state == EMPTY:
+                marks[slot, 0] = value
+                marks[slot, 1] = np.uint64(count)
+                values[count] = value
+                slot_of[count] = slot
+                index[j] = count
+                count += 1
+                if count > limit:
+                    slot_bits += 1
+                    slot_mask = (1 << slot_bits) - 1
+                    limit = (2 << slot_bits) // 3
+                    marks = _insert_all(values, count, slot_bits, slot_of)
+                break
+            if marks[slot, 0] == value:
+                index[j] = np.int64(state)
+                break
+            slot = (slot + 1) & slot_mask
+    for k in range(count):
+        marks[slot_of[k], 1] = UNSEEN
+    return marks, slot_bits, values[:count].copy(), slot_of[:count].copy(), index
 
 
 @_jit
-def find_sorted(hashes: np.ndarray, bits: np.ndarray, shift: np.uint64, values: np.ndarray) -> np.ndarray:
-    """Index in the sorted ``values`` of each hash, or -1 (bit filter first)."""
+def find_marked(
+    hashes: np.ndarray, bits: np.ndarray, shift: np.uint64, marks: np.ndarray, slot_mask: int
+) -> np.ndarray:
+    """Slot in the table ``marks`` of each hash, or -1 (bit filter first)."""
     out = np.full(hashes.size, -1, dtype=np.int64)
-    if values.size == 0:
-        return out
     for i in range(hashes.size):
         value = hashes[i]
-        if _maybe(bits, shift, value):
-            out[i] = _position(values, value)
+        if not _maybe(bits, shift, value):
+            continue
+        slot = _home(value, slot_mask)
+        while marks[slot, 1] != EMPTY:
+            if marks[slot, 0] == value:
+                out[i] = slot
+                break
+            slot = (slot + 1) & slot_mask
     return out
 
 

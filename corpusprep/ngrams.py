@@ -53,7 +53,6 @@ document is decoded with its ``decode`` function and normalised in Python.
 
 from __future__ import annotations
 
-import dataclasses
 import functools
 import math
 import time
@@ -66,7 +65,7 @@ import numpy as np
 import xxhash
 
 from corpusprep import ngram_kernels as kernels
-from corpusprep.shingles import punctuation_table, sorted_distinct
+from corpusprep.shingles import punctuation_table
 
 __all__ = [
     "DEFAULT_NGRAM",
@@ -75,7 +74,6 @@ __all__ = [
     "StreamTables",
     "byte_separators",
     "complete_documents",
-    "distinct_and_index",
     "document_count",
     "hash_normalised",
     "hash_normalised_compiled",
@@ -302,42 +300,21 @@ def _finish(data: np.ndarray, boundary: np.ndarray, lengths: np.ndarray, ngram: 
     )
 
 
-def distinct_and_index(values: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """The sorted distinct values (as :func:`corpusprep.shingles.sorted_distinct`), and the index
-    in them of each value: ``distinct[index] == values``. One ``np.argsort`` and one compiled pass.
-
-    >>> distinct, index = distinct_and_index(np.array([30, 10, 30, 20], dtype=np.uint64))
-    >>> distinct.tolist(), index.tolist()
-    ([10, 20, 30], [2, 0, 2, 1])
-    """
-    values = np.ascontiguousarray(values, dtype=np.uint64)
-    result: tuple[np.ndarray, np.ndarray] = kernels.distinct_index(values, np.argsort(values))
-    return result
-
-
 _TEXT_END = 256
-_TEXT_TABLES_ARGS = (_TEXT_END, frozenset({_TEXT_END}))
 
 
 def hash_texts(texts: Sequence[str], ngram: int = DEFAULT_NGRAM) -> HashedChunk:
     """Words and n-grams of whole texts (each text one document); ``lengths`` counts characters.
 
-    The texts go through the byte-stream path of :func:`hash_stream_chunk` as UTF-8
-    bytes, each ended by id 256 (so ASCII is normalised by table, the rest in Python).
+    The texts go through the byte path of :func:`hash_stream_chunk` as UTF-8 bytes, each
+    ended by a space that marks the document's end (so ASCII is normalised by table, the
+    rest in Python); a space separates words and cuts runs as an end-of-document id does.
     """
     encoded = [text.encode("utf-8") for text in texts]
-    joined = np.frombuffer(b"".join(encoded), dtype=np.uint8)
-    stream = np.full(joined.size + len(encoded), _TEXT_END, dtype=np.uint16)
-    if encoded:
-        text_byte = np.ones(stream.size, dtype=bool)
-        text_byte[np.cumsum([len(item) + 1 for item in encoded]) - 1] = False
-        stream[text_byte] = joined
-    end, specials = _TEXT_TABLES_ARGS
-    chunk = hash_stream_chunk(
-        stream, StreamTables(end_of_document=end, specials=specials, byte_ids=True), ngram
-    )
+    stream = np.frombuffer(b" ".join(encoded) + b" " if encoded else b"", dtype=np.uint8)
+    ends = np.cumsum([len(item) + 1 for item in encoded], dtype=np.int64) - 1
     lengths = np.array([len(text) for text in texts], dtype=np.int64)
-    return dataclasses.replace(chunk, lengths=lengths)
+    return _hash_byte_ids(stream, 256, ends, lengths, ngram)
 
 
 def hash_texts_python(texts: Sequence[str], ngram: int = DEFAULT_NGRAM) -> HashedChunk:
@@ -434,7 +411,7 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
     if tokens.size and tokens[-1] != tables.end_of_document:
         tokens = np.concatenate((tokens, np.array([tables.end_of_document], dtype=tokens.dtype)))
     size = _table_size(tokens, tables)
-    lower, kind, _ = _id_tables(size, tables.specials)
+    kind = _id_tables(size, tables.specials)[1]
     document_ends, lengths = kernels.documents(tokens, kind, tables.end_of_document)
     if not tables.byte_ids:
         assert tables.decode is not None
@@ -448,55 +425,58 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
         data, boundary = _encode_normal([normal_text(text).encode("utf-8") for text in texts])
         return _finish(data, boundary, lengths, ngram)
 
-    data = kernels.normalise_tokens(tokens, lower)
+    return _hash_byte_ids(tokens, size, document_ends, lengths, ngram)
+
+
+def _hash_byte_ids(
+    tokens: np.ndarray, size: int, document_ends: np.ndarray, lengths: np.ndarray, ngram: int
+) -> HashedChunk:
+    """The byte-tokenizer path of :func:`hash_stream_chunk`: ids 0..255 are UTF-8 bytes, ids up
+    to ``size`` separate words; ``document_ends`` are the positions of the separators ending
+    documents."""
+    data = kernels.normalise_tokens(tokens, _lookup(size)[0])
     boundary = np.zeros(tokens.size, dtype=bool)
     boundary[document_ends] = True
-    if not kernels.census(tokens, tables.end_of_document)[1]:
+    if not kernels.census(tokens, -1)[1]:
         return _finish(data, boundary, lengths, ngram)
     # A run of tokens between ASCII whitespace (or special ids) that holds a byte >= 128 is decoded
     # and normalised in Python. Cutting at ASCII whitespace changes nothing: it is never part of a
     # UTF-8 sequence, and it is neither cased nor case-ignorable, so str.lower (final sigma
     # included) and str.split give the same words as on the whole document.
     begins, ends = kernels.wide_runs(tokens, _lookup(size)[2])
-    pieces_data: list[np.ndarray] = []
-    pieces_boundary: list[np.ndarray] = []
-    position = 0
-    for begin, end in zip(begins.tolist(), ends.tolist(), strict=True):
-        pieces_data.append(data[position:begin])
-        pieces_boundary.append(boundary[position:begin])
-        text = tokens[begin:end].astype(np.uint8).tobytes().decode("utf-8", errors="replace")
-        piece = np.frombuffer(normal_text(text).encode("utf-8"), dtype=np.uint8)
-        pieces_data.append(piece)
-        pieces_boundary.append(np.zeros(piece.size, dtype=bool))
-        position = end
-    pieces_data.append(data[position:])
-    pieces_boundary.append(boundary[position:])
-    return _finish(
-        np.concatenate(pieces_data),
-        np.concatenate(pieces_boundary),
-        lengths,
-        ngram,
-    )
+    raw = (tokens if tokens.dtype == np.uint8 else tokens.astype(np.uint8)).tobytes()  # runs hold bytes only
+    pieces = [
+        normal_text(raw[begin:end].decode("utf-8", errors="replace")).encode("utf-8")
+        for begin, end in zip(begins.tolist(), ends.tolist(), strict=True)
+    ]
+    offsets = np.cumsum([0, *map(len, pieces)], dtype=np.int64)
+    replacement = np.frombuffer(b"".join(pieces), dtype=np.uint8)
+    data, boundary = kernels.splice(data, boundary, begins, ends, replacement, offsets)
+    return _finish(data, boundary, lengths, ngram)
 
 
 # --------------------------------------------------------------------------- train scan
 class NgramSet:
-    """Distinct n-gram hashes: sorted, behind a bit filter, and in a table of marks for the train scan.
+    """The distinct values of some n-gram hashes, behind a bit filter, in a table of marks.
+
+    ``values`` are the distinct hashes in order of first occurrence and ``index[j]``
+    the position in ``values`` of hash ``j`` (one pass through the table, no sort).
 
     The filter is blocked (Putze, Sanders & Singler 2007; from memory): a hash sets two
     bits, chosen by its low 12 bits, in the 64-bit word chosen by its top bits, about
     ``bits_per_value`` bits per value; so a hash that is not in the set passes with
     probability about ``(1 - exp(-2 / bits_per_value))^2`` and costs one cache line.
     Hashes that pass are looked up in an open-addressing table
-    (:func:`corpusprep.ngram_kernels.build_marks`, at most half full) whose rows also
-    hold each value's mark: the first train document holding it.
+    (:func:`corpusprep.ngram_kernels.build_set`, 1/3 to 2/3 full) whose rows also hold
+    each value's mark: the first train document holding it.
     """
 
-    def __init__(self, values: np.ndarray, *, bits_per_value: int = 16) -> None:
-        values = np.ascontiguousarray(values, dtype=np.uint64)
-        if values.size > 1 and not bool(np.all(values[1:] > values[:-1])):
-            raise ValueError("NgramSet values must be sorted and distinct")
-        self.values = values
+    def __init__(self, hashes: np.ndarray, *, bits_per_value: int = 16) -> None:
+        hashes = np.ascontiguousarray(hashes, dtype=np.uint64)
+        self._table, self.slot_bits, self.values, self.slot_of, self.index = kernels.build_set(
+            hashes, _slot_bits(hashes.size // 4)
+        )
+        values = self.values
         width = min(34, max(12, math.ceil(math.log2(max(values.size, 1) * bits_per_value))))
         self.shift = np.uint64(64 - (width - 6))
         self.bits = np.zeros(1 << (width - 6), dtype=np.uint64)
@@ -505,13 +485,19 @@ class NgramSet:
             high = (values >> np.uint64(6)) & np.uint64(63)
             pattern = (np.uint64(1) << low) | (np.uint64(1) << high)
             np.bitwise_or.at(self.bits, (values >> self.shift).astype(np.int64), pattern)
-        slot_bits = max(4, math.ceil(math.log2(max(values.size, 1) * 2)))
-        self.slot_mask = (1 << slot_bits) - 1
-        self._marks, self.slot_of = kernels.build_marks(values, slot_bits)
+        self.slot_mask = (1 << self.slot_bits) - 1
+        self._handed = False
+        self._index_of_slot: np.ndarray | None = None
 
     def new_marks(self) -> np.ndarray:
-        """A fresh table of marks (no document seen) for :func:`scan_chunk`; one per worker."""
-        marks: np.ndarray = self._marks.copy()
+        """A fresh table of marks (no document seen) for :func:`scan_chunk`; one per worker.
+
+        Every table has the same keys in the same slots; only the marks differ.
+        """
+        if not self._handed:
+            self._handed = True
+            return self._table
+        marks: np.ndarray = kernels.build_marks(self.values, self.slot_bits)[0]
         return marks
 
     def first_documents(self, *tables: np.ndarray) -> np.ndarray:
@@ -529,20 +515,24 @@ class NgramSet:
         table[rows, 1] = np.minimum(table[rows, 1], documents.astype(np.uint64))
 
     def find(self, hashes: np.ndarray) -> np.ndarray:
-        """Index in ``values`` of each hash, or -1 (compiled)."""
+        """Index in ``values`` of each hash, or -1 (compiled: filter, then table)."""
         hashes = np.ascontiguousarray(hashes, dtype=np.uint64)
-        found: np.ndarray = kernels.find_sorted(hashes, self.bits, self.shift, self.values)
+        slots = kernels.find_marked(hashes, self.bits, self.shift, self._table, self.slot_mask)
+        if self._index_of_slot is None:
+            self._index_of_slot = np.full(self.slot_mask + 1, -1, dtype=np.int64)
+            self._index_of_slot[self.slot_of] = np.arange(self.values.size)
+        found: np.ndarray = np.where(slots >= 0, self._index_of_slot[slots], -1)
         return found
 
     def find_reference(self, hashes: np.ndarray) -> np.ndarray:
-        """:meth:`find` by ``np.searchsorted`` alone (the reference)."""
-        out = np.full(hashes.size, -1, dtype=np.int64)
-        if not self.values.size:
-            return out
-        position = np.minimum(np.searchsorted(self.values, hashes), self.values.size - 1)
-        found = self.values[position] == hashes
-        out[found] = position[found]
-        return out
+        """:meth:`find` with a Python dict (the reference)."""
+        where = {value: index for index, value in enumerate(self.values.tolist())}
+        return np.array([where.get(value, -1) for value in np.asarray(hashes).tolist()], dtype=np.int64)
+
+
+def _slot_bits(count: int) -> int:
+    """Slots for ``count`` values: a power of two, 1/3 to 2/3 full."""
+    return max(4, math.ceil(math.log2(max(count, 1) * 3 / 2)))
 
 
 @functools.lru_cache(maxsize=8)
@@ -625,15 +615,14 @@ def scan_chunk(
         # Runs between ASCII whitespace holding a byte >= 128 are normalised in Python, as in
         # hash_stream_chunk; the kernel takes their word hashes instead of reading them.
         run_begin, run_end = kernels.wide_runs(tokens, _lookup(size)[2])
-        counts = [0]
-        words: list[bytes] = []
-        for begin, end in zip(run_begin.tolist(), run_end.tolist(), strict=True):
-            text = tokens[begin:end].astype(np.uint8).tobytes().decode("utf-8", errors="replace")
-            found = [word.encode("utf-8") for word in normal_words(text)]
-            words += found
-            counts.append(len(found))
-        run_offsets = np.cumsum(counts, dtype=np.int64)
-        run_words = kernels.word_hashes(np.frombuffer(b" ".join(words), dtype=np.uint8), _constants_array())
+        raw = (tokens if tokens.dtype == np.uint8 else tokens.astype(np.uint8)).tobytes()  # runs: bytes only
+        words = [
+            normal_words(raw[begin:end].decode("utf-8", errors="replace"))
+            for begin, end in zip(run_begin.tolist(), run_end.tolist(), strict=True)
+        ]
+        run_offsets = np.cumsum([0, *map(len, words)], dtype=np.int64)
+        joined = " ".join(word for run in words for word in run).encode("utf-8")
+        run_words = kernels.word_hashes(np.frombuffer(joined, dtype=np.uint8), _constants_array())
     kernels.scan_tokens(
         tokens,
         terms,
@@ -662,7 +651,7 @@ def warm_up(token_dtypes: Sequence[np.dtype[Any] | type] = (np.uint16,)) -> floa
     """
     started = time.perf_counter()
     chunk = hash_texts(["Ferry été dock", ""], 1)
-    members = NgramSet(sorted_distinct(chunk.hashes))
+    members = NgramSet(chunk.hashes)
     members.find(chunk.hashes)
     for dtype in token_dtypes:
         tokens = np.array([*"Été b".encode(), _TEXT_END], dtype=dtype)

@@ -26,7 +26,6 @@ from corpusprep.ngrams import (
     StreamTables,
     byte_separators,
     complete_documents,
-    distinct_and_index,
     hash_normalised,
     hash_normalised_compiled,
     hash_stream_chunk,
@@ -274,7 +273,7 @@ def test_scan_chunk_equals_hash_and_lookup(
 ) -> None:
     # evaluation n-grams plus some of train's, so that hits and misses both occur
     shared = hash_texts(evaluation + train[:1], n).hashes
-    members = NgramSet(np.unique(shared))
+    members = NgramSet(shared)
     stream = stream_of(train)
     if tail and stream.size:
         stream = stream[:-1]  # a last document without its end id
@@ -299,28 +298,34 @@ def test_scan_chunk_equals_hash_and_lookup(
             hash_texts([text], n).hashes.tolist(),
             strict=True,
         ):
-            slot = int(np.searchsorted(members.values, value))
+            slot = members.values.tolist().index(value)
             assert (fast[slot] >= 0) == (gram in train_grams)
 
 
 @settings(max_examples=60, deadline=None)
 @given(
     values=st.lists(st.integers(0, (1 << 64) - 1), max_size=300),
+    repeats=st.lists(st.integers(0, 299), max_size=100),
     probes=st.lists(st.integers(0, (1 << 64) - 1), max_size=300),
     bits=st.integers(1, 16),
 )
-def test_hash_set_find_and_distinct_index(values: list[int], probes: list[int], bits: int) -> None:
-    array = np.array(values, dtype=np.uint64)
-    distinct, index = distinct_and_index(array)
-    unique, inverse = np.unique(array, return_inverse=True)  # NumPy's own, the reference
-    assert distinct.tolist() == unique.tolist() and index.tolist() == inverse.ravel().tolist()
-    members = NgramSet(distinct, bits_per_value=bits)
-    needles = np.array(probes + values, dtype=np.uint64)
-    expected = [sorted(set(values)).index(v) if v in set(values) else -1 for v in needles.tolist()]
+def test_hash_set_distinct_values_and_find(
+    values: list[int], repeats: list[int], probes: list[int], bits: int
+) -> None:
+    hashes = values + [values[i % len(values)] for i in repeats] if values else []
+    members = NgramSet(np.array(hashes, dtype=np.uint64), bits_per_value=bits)
+    # reference: Python's dict keeps first-insertion order (language reference, dict)
+    first_seen = list(dict.fromkeys(hashes))
+    assert members.values.tolist() == first_seen
+    assert members.index.tolist() == [first_seen.index(value) for value in hashes]
+    needles = np.array(probes + hashes, dtype=np.uint64)
+    expected = [first_seen.index(v) if v in set(hashes) else -1 for v in needles.tolist()]
     assert members.find(needles).tolist() == expected
     assert members.find_reference(needles).tolist() == expected
-    with pytest.raises(ValueError, match="sorted and distinct"):
-        NgramSet(np.array([2, 1], dtype=np.uint64))
+    # every table of marks starts unmarked and has the same slots
+    assert members.first_documents(members.new_marks(), members.new_marks()).tolist() == [-1] * len(
+        first_seen
+    )
 
 
 def test_warm_up_compiles_every_kernel() -> None:
