@@ -3,13 +3,20 @@
 Each takes a batch (and frozen settings) and returns a new value; nothing is kept
 between calls, so the same batches give the same results on any engine and any
 number of workers.
+
+:func:`stage_inputs` is the first pass's task: a worker reads a run of input
+files itself, prepares their batches and writes them to a part file of the
+run's work folder; only the fixed-width per-row results (statuses, hashes,
+keys, groups) and the counts travel back to the driver, never the texts.
 """
 
 from __future__ import annotations
 
+import os
 from collections import Counter
 from collections.abc import Iterator
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -17,12 +24,29 @@ import pyarrow as pa
 import pyarrow.compute as pc
 
 from corpusprep.clean import CleanConfig, clean_batch
+from corpusprep.errors import IntegrityError
 from corpusprep.exact import ExactConfig, exact_keys
 from corpusprep.near import NearConfig, signature_batch
-from corpusprep.schema import KEPT
+from corpusprep.read import InputFile, ReadConfig, read_entries
+from corpusprep.schema import DOC_SCHEMA, KEPT, REJECTED, STATUSES
 from corpusprep.tokens import Tokenizer
+from corpusprep.walk import Entry
 
-__all__ = ["PreparedBatch", "bounded_slices", "encode_texts", "hex_pair", "prepare_batch"]
+__all__ = [
+    "PreparedBatch",
+    "StagePart",
+    "StageTask",
+    "bounded_slices",
+    "encode_texts",
+    "hex_pair",
+    "prepare_batch",
+    "stage_inputs",
+]
+
+#: Status name -> the int8 code the driver keeps per row.
+STATUS_CODE = {status: code for code, status in enumerate(STATUSES)}
+#: Rejections quoted (file:line: reason) per part, for the error when too many records are rejected.
+_EXAMPLES = 5
 
 
 @dataclass(slots=True)
@@ -92,3 +116,119 @@ def hex_pair(pair: np.ndarray) -> str:
     '000000000000000100000000000000ff'
     """
     return f"{int(pair[0]):016x}{int(pair[1]):016x}"
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class StageTask:
+    """One first-pass task: a run of consecutive inputs and where to write their staged rows."""
+
+    index: int
+    entries: tuple[Entry, ...]
+    root_real: str
+    read: ReadConfig
+    clean: CleanConfig
+    exact: ExactConfig
+    near: NearConfig
+    folder: str  # the work folder's parts/ (on storage every worker sees)
+    batch_rows: int
+    batch_text_bytes: int
+
+    @property
+    def documents_file(self) -> Path:
+        return Path(self.folder) / f"{self.index:06d}.arrow"
+
+    @property
+    def signatures_file(self) -> Path:
+        return Path(self.folder) / f"{self.index:06d}.signatures"
+
+
+@dataclass(slots=True, kw_only=True)
+class StagePart:
+    """What a :class:`StageTask` sends back: everything but the texts, which stay in its part files."""
+
+    index: int
+    inputs: list[InputFile]
+    rows: int
+    status: np.ndarray  # int8 codes of :data:`STATUS_CODE`
+    text_hashes: np.ndarray  # (rows, 2) uint64
+    exact_keys: np.ndarray  # (rows, 2) uint64
+    groups: list[str | None]
+    counts: dict[str, Counter[str]]
+    reasons: Counter[str]
+    examples: list[str]
+    signature_dtype: str | None
+    permutations: int
+
+
+def stage_inputs(task: StageTask) -> StagePart:
+    """Read, clean, hash and sign ``task.entries``; write the part files; return the per-row results."""
+    folder = Path(task.folder)
+    if not folder.is_dir():
+        raise IntegrityError(
+            f"{folder}: this worker cannot see the run's work folder; with a remote cluster the output "
+            "folder must be on storage that every worker mounts at the same path"
+        )
+    inputs: list[InputFile] = []
+    statuses: list[np.ndarray] = []
+    text_hashes: list[np.ndarray] = []
+    keys: list[np.ndarray] = []
+    groups: list[str | None] = []
+    counts: dict[str, Counter[str]] = {"clean": Counter(), "near": Counter()}
+    reasons: Counter[str] = Counter()
+    examples: list[str] = []
+    signature_dtype: str | None = None
+    permutations = rows = 0
+    documents, signatures = task.documents_file, task.signatures_file
+    temporary = [path.with_name(f".{path.name}.partial") for path in (documents, signatures)]
+    with (
+        pa.OSFile(str(temporary[0]), "wb") as sink,
+        pa.ipc.new_file(sink, DOC_SCHEMA) as writer,
+        open(temporary[1], "wb") as signature_sink,
+    ):
+        for item in read_entries(task.entries, task.read, task.root_real, batch_rows=task.batch_rows):
+            if isinstance(item, InputFile):
+                inputs.append(item)
+                continue
+            for piece in bounded_slices(item, task.batch_text_bytes):
+                prepared = prepare_batch(piece, task.clean, task.exact, task.near)
+                batch = prepared.batch
+                writer.write_batch(batch)
+                status = batch.column("status").to_pylist()
+                statuses.append(np.array([STATUS_CODE[str(state)] for state in status], dtype=np.int8))
+                text_hashes.append(prepared.text_hashes)
+                keys.append(prepared.exact_keys)
+                groups.extend(batch.column("group").to_pylist())
+                for name, counter in prepared.counts.items():
+                    counts[name].update(counter)
+                if prepared.signatures is not None:
+                    signature_dtype = prepared.signatures.dtype.str
+                    permutations = prepared.signatures.shape[1]
+                    signature_sink.write(np.ascontiguousarray(prepared.signatures).tobytes())
+                for state, reason, source, line in zip(
+                    status,
+                    batch.column("reason").to_pylist(),
+                    batch.column("source").to_pylist(),
+                    batch.column("line").to_pylist(),
+                    strict=True,
+                ):
+                    if state == REJECTED:
+                        reasons[str(reason).split(":")[0]] += 1
+                        if len(examples) < _EXAMPLES:
+                            examples.append(f"{source}:{line if line is not None else '-'}: {reason}")
+                rows += batch.num_rows
+    for path, final in zip(temporary, (documents, signatures), strict=True):
+        os.replace(path, final)
+    return StagePart(
+        index=task.index,
+        inputs=inputs,
+        rows=rows,
+        status=np.concatenate(statuses) if statuses else np.zeros(0, dtype=np.int8),
+        text_hashes=np.concatenate(text_hashes) if text_hashes else np.zeros((0, 2), dtype=np.uint64),
+        exact_keys=np.concatenate(keys) if keys else np.zeros((0, 2), dtype=np.uint64),
+        groups=groups,
+        counts=counts,
+        reasons=reasons,
+        examples=examples,
+        signature_dtype=signature_dtype,
+        permutations=permutations,
+    )

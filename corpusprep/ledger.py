@@ -26,6 +26,9 @@ from corpusprep.schema import KEPT
 __all__ = ["LEDGER_FILE", "LEDGER_SCHEMA", "read_ledger", "write_ledger"]
 
 LEDGER_FILE = "ledger.parquet"
+#: Rows per Parquet row group: fixed, so the file's bytes depend on the rows alone, not on how
+#: the run cut its work into batches (which differs with the staging of the inputs).
+ROW_GROUP_ROWS = 1 << 16
 
 _LEDGER_SCHEMA_FIELDS: list[pa.Field[Any]] = [
     pa.field("record_id", pa.string(), nullable=False),
@@ -67,8 +70,9 @@ def write_ledger(
 ) -> None:
     """Write the ledger for the staged ``documents`` (an Arrow IPC file) and per-row results.
 
-    The staged file is memory-mapped and written batch by batch, so memory
-    stays bounded by one batch plus the per-row arrays.
+    The staged file is memory-mapped and read batch by batch; rows are written
+    in row groups of :data:`ROW_GROUP_ROWS`, so memory stays bounded by one row
+    group plus the per-row arrays.
     """
     temporary = path.with_name(f".{path.name}.tmp")
     with (
@@ -77,6 +81,8 @@ def write_ledger(
     ):
         reader = pa.ipc.open_file(source)
         table = reader.read_all()  # zero-copy view of the memory map, for record-id lookups
+        pending: list[pa.Table] = []
+        pending_rows = 0
         start = 0
         for index in range(reader.num_record_batches):
             batch = reader.get_batch(index)
@@ -107,8 +113,16 @@ def write_ledger(
                 "split": pa.array(list(split_of[start:stop]), type=pa.string()),
                 "tokens": pa.array(tokens, mask=~kept | (tokens < 0), type=pa.int64()),
             }
-            writer.write_table(pa.Table.from_pydict(columns, schema=LEDGER_SCHEMA))
+            pending.append(pa.Table.from_pydict(columns, schema=LEDGER_SCHEMA))
+            pending_rows += batch.num_rows
             start = stop
+            if pending_rows >= ROW_GROUP_ROWS:
+                whole = pa.concat_tables(pending)
+                cut = pending_rows - pending_rows % ROW_GROUP_ROWS
+                writer.write_table(whole.slice(0, cut), row_group_size=ROW_GROUP_ROWS)
+                pending, pending_rows = [whole.slice(cut)], pending_rows - cut
+        if pending_rows:
+            writer.write_table(pa.concat_tables(pending), row_group_size=ROW_GROUP_ROWS)
     temporary.replace(path)
 
 

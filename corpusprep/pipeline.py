@@ -30,7 +30,7 @@ import pyarrow as pa
 
 from corpusprep import __version__
 from corpusprep.barriers import MappedPairWork, SignatureStore, first_occurrences_mapped
-from corpusprep.batchwork import bounded_slices, encode_texts, hex_pair, prepare_batch
+from corpusprep.batchwork import StageTask, encode_texts, hex_pair, stage_inputs
 from corpusprep.checkpoint import Checkpoints, input_fingerprint, step_keys
 from corpusprep.definition import Definition
 from corpusprep.errors import InputError, IntegrityError, TooManyRejectedError
@@ -41,10 +41,11 @@ from corpusprep.near import find_clusters
 from corpusprep.pack import document_order, pack_split_mapped, smallest_dtype
 from corpusprep.pool import Mapper, local_engine
 from corpusprep.publish import check_output_folder, publish_folder
-from corpusprep.read import InputFile, read_folder
+from corpusprep.read import InputFile, input_entries
 from corpusprep.schema import DOC_SCHEMA, EMPTY, EXACT_COPY, KEPT, NEAR_COPY, REJECTED, STATUSES
 from corpusprep.split import SPLITS, assign_splits, components
 from corpusprep.tokens import build_tokenizer, tokenizer_from_state, tokenizer_state
+from corpusprep.walk import Entry
 
 __all__ = ["ProgressCallback", "RunResult", "run_pipeline"]
 
@@ -83,6 +84,11 @@ _KILL_AFTER_VARIABLE = "CORPUSPREP_FAULT_KILL_AFTER"
 _CHUNK_ROWS = 1 << 16
 #: A batch holds at most this many records and (but for one huge record) this much text.
 _BATCH_ROWS = 1024
+#: Input bytes (on disk) in one first-pass task, and most files in one: the work of a task is
+#: reading, cleaning and signing about this much, written by the worker to its own part file.
+_PART_BYTES = 16 << 20
+_PART_FILES = 1024
+_PARTS = "parts"
 _BATCH_TEXT_BYTES = 4 << 20
 
 
@@ -149,10 +155,24 @@ class _Run:
     # ------------------------------------------------------------------ pass 1
     def first_pass(self) -> None:
         definition = self.definition
-        prepare = functools.partial(
-            prepare_batch, clean=definition.clean, exact=definition.exact, near=definition.near
-        )
-        batches: Iterator[pa.RecordBatch] = self._read_batches()
+        root_real, entries = input_entries(self.input, definition.read)
+        parts = self.work / _PARTS
+        parts.mkdir(exist_ok=True)
+        tasks = [
+            StageTask(
+                index=index,
+                entries=group,
+                root_real=root_real,
+                read=definition.read,
+                clean=definition.clean,
+                exact=definition.exact,
+                near=definition.near,
+                folder=str(parts),
+                batch_rows=_BATCH_ROWS,
+                batch_text_bytes=_BATCH_TEXT_BYTES,
+            )
+            for index, group in enumerate(input_groups(entries))
+        ]
         statuses: list[np.ndarray] = []
         text_hashes: list[np.ndarray] = []
         keys: list[np.ndarray] = []
@@ -160,47 +180,30 @@ class _Run:
         counts: dict[str, Counter[str]] = {"clean": Counter(), "near": Counter()}
         reasons: Counter[str] = Counter()
         examples: list[str] = []
-        signature_chunks = 0
+        self.has_signatures = False
         rows = 0
-        with (
-            pa.OSFile(str(self.work / "documents.arrow"), "wb") as sink,
-            pa.ipc.new_file(sink, DOC_SCHEMA) as writer,
-            open(self.work / "signatures.raw", "wb") as signature_file,
-        ):
-            for prepared in self.mapper(prepare, batches):
-                batch = prepared.batch
-                writer.write_batch(batch)
-                status = batch.column("status").to_pylist()
-                statuses.append(np.array([_STATUS_CODE[str(s)] for s in status], dtype=np.int8))
-                text_hashes.append(prepared.text_hashes)
-                keys.append(prepared.exact_keys)
-                groups.extend(batch.column("group").to_pylist())
-                for name, counter in prepared.counts.items():
-                    counts[name].update(counter)
-                if prepared.signatures is not None:
-                    self.signature_dtype = prepared.signatures.dtype
-                    self.permutations = prepared.signatures.shape[1]
-                    signature_file.write(np.ascontiguousarray(prepared.signatures).tobytes())
-                    signature_chunks += 1
-                for state, reason, source, line in zip(
-                    status,
-                    batch.column("reason").to_pylist(),
-                    batch.column("source").to_pylist(),
-                    batch.column("line").to_pylist(),
-                    strict=True,
-                ):
-                    if state == REJECTED:
-                        reasons[str(reason).split(":")[0]] += 1
-                        if len(examples) < 5:
-                            examples.append(f"{source}:{line if line is not None else '-'}: {reason}")
-                rows += batch.num_rows
-                self.progress("read", rows, None)
+        for part in self.mapper(stage_inputs, tasks):
+            self.inputs.extend(part.inputs)
+            statuses.append(part.status)
+            text_hashes.append(part.text_hashes)
+            keys.append(part.exact_keys)
+            groups.extend(part.groups)
+            for name, counter in part.counts.items():
+                counts[name].update(counter)
+            reasons.update(part.reasons)
+            examples.extend(part.examples[: max(0, 5 - len(examples))])
+            if part.signature_dtype is not None:
+                self.signature_dtype = np.dtype(part.signature_dtype)
+                self.permutations = part.permutations
+                self.has_signatures = True
+            rows += part.rows
+            self.progress("read", rows, None)
+        self._join_parts(tasks)
         self.rows = rows
         self.status = np.concatenate(statuses) if statuses else np.zeros(0, dtype=np.int8)
         self.text_hashes = np.concatenate(text_hashes) if text_hashes else np.zeros((0, 2), dtype=np.uint64)
         self.keys = np.concatenate(keys) if keys else np.zeros((0, 2), dtype=np.uint64)
         self.groups = groups
-        self.has_signatures = signature_chunks > 0
         rejected = int(np.count_nonzero(self.status == _STATUS_CODE[REJECTED]))
         formats = Counter(item.format for item in self.inputs)
         encodings = Counter(item.encoding for item in self.inputs if item.encoding)
@@ -224,12 +227,22 @@ class _Run:
                 + ". Fix the input or raise read.max_rejected_fraction."
             )
 
-    def _read_batches(self) -> Iterator[pa.RecordBatch]:
-        for item in read_folder(self.input, self.definition.read, batch_rows=_BATCH_ROWS):
-            if isinstance(item, InputFile):
-                self.inputs.append(item)
-            else:
-                yield from bounded_slices(item, _BATCH_TEXT_BYTES)
+    def _join_parts(self, tasks: list[StageTask]) -> None:
+        """Append the first pass's part files, in task order, to the staged documents and signatures."""
+        with (
+            pa.OSFile(str(self.work / "documents.arrow"), "wb") as sink,
+            pa.ipc.new_file(sink, DOC_SCHEMA) as writer,
+            open(self.work / "signatures.raw", "wb") as signatures,
+        ):
+            for task in tasks:
+                with pa.memory_map(str(task.documents_file)) as source:
+                    reader = pa.ipc.open_file(source)
+                    for index in range(reader.num_record_batches):
+                        writer.write_batch(reader.get_batch(index))
+                with open(task.signatures_file, "rb") as part:
+                    shutil.copyfileobj(part, signatures, 1 << 20)
+                task.documents_file.unlink()
+                task.signatures_file.unlink()
 
     # ------------------------------------------------------------------ barriers
     def exact_step(self) -> None:
@@ -569,6 +582,35 @@ class _Run:
             "splits": self.splits,
             "signatures": signatures,
         }
+
+
+def input_groups(
+    entries: list[Entry], *, part_bytes: int = 0, part_files: int = 0
+) -> list[tuple[Entry, ...]]:
+    """Cut the inputs into runs of consecutive entries of about ``part_bytes`` on disk (first-pass tasks).
+
+    The cut depends only on the entries and their sizes, never on the engine or
+    the number of workers. A file larger than ``part_bytes`` is a task of its
+    own: one file is read by one worker.
+    """
+    part_bytes = part_bytes or _PART_BYTES
+    part_files = part_files or _PART_FILES
+    groups: list[tuple[Entry, ...]] = []
+    current: list[Entry] = []
+    size = 0
+    for entry in entries:
+        try:
+            length = os.stat(entry.path).st_size if entry.kind == "file" else 0
+        except OSError:
+            length = 0  # the task reports the file as unreadable
+        if current and (size + length > part_bytes or len(current) >= part_files):
+            groups.append(tuple(current))
+            current, size = [], 0
+        current.append(entry)
+        size += length
+    if current:
+        groups.append(tuple(current))
+    return groups
 
 
 def run_pipeline(

@@ -29,7 +29,7 @@ import csv
 import os
 import sys
 import tempfile
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -58,7 +58,15 @@ from corpusprep.formats import (
 from corpusprep.schema import DOC_SCHEMA, KEPT, REJECTED
 from corpusprep.walk import Entry, glob_to_regex, list_entries
 
-__all__ = ["FORMAT_BY_SUFFIX", "InputFile", "ReadConfig", "format_of", "read_folder"]
+__all__ = [
+    "FORMAT_BY_SUFFIX",
+    "InputFile",
+    "ReadConfig",
+    "format_of",
+    "input_entries",
+    "read_entries",
+    "read_folder",
+]
 
 FORMAT_BY_SUFFIX = {
     ".txt": "text",
@@ -216,16 +224,12 @@ def _batch(rows: list[_Row]) -> pa.RecordBatch:
     return pa.RecordBatch.from_arrays(columns, schema=DOC_SCHEMA)
 
 
-def read_folder(
-    folder: Path, config: ReadConfig, *, batch_rows: int = 1024
-) -> Iterator[pa.RecordBatch | InputFile]:
-    """Document batches and :class:`InputFile` entries for every input under ``folder``.
+def input_entries(folder: Path, config: ReadConfig) -> tuple[str, list[Entry]]:
+    """The real path of ``folder`` and every input under it, in sorted order of the shown path.
 
     Raises :class:`corpusprep.errors.InputError` when the folder is missing,
     not a folder, or cannot be listed.
     """
-    if batch_rows < 1:
-        raise ValueError(f"batch_rows = {batch_rows}: must be at least 1")
     root = os.fspath(folder)
     if not os.path.exists(root):
         raise InputError(f"{root}: the input folder does not exist")
@@ -235,7 +239,21 @@ def read_folder(
         entries = list_entries(root, config.include, config.exclude)
     except OSError as error:
         raise InputError(f"{root}: the input folder cannot be listed ({error.strerror or error})") from None
-    root_real = os.path.realpath(root)
+    return os.path.realpath(root), entries
+
+
+def read_entries(
+    entries: Sequence[Entry], config: ReadConfig, root_real: str, *, batch_rows: int = 1024
+) -> Iterator[pa.RecordBatch | InputFile]:
+    """Document batches and :class:`InputFile` entries for ``entries`` (from :func:`input_entries`).
+
+    Every input's :class:`InputFile` comes after the batch that holds its last row.
+    Reading consecutive runs of the entries one by one gives the same rows, in
+    the same order, as reading them all at once (only the cut into batches
+    differs), which is how the first pass spreads the reading over workers.
+    """
+    if batch_rows < 1:
+        raise ValueError(f"batch_rows = {batch_rows}: must be at least 1")
     rows: list[_Row] = []
     waiting: list[InputFile] = []
     for entry in entries:
@@ -255,6 +273,20 @@ def read_folder(
     if rows:
         yield _batch(rows)
     yield from waiting
+
+
+def read_folder(
+    folder: Path, config: ReadConfig, *, batch_rows: int = 1024
+) -> Iterator[pa.RecordBatch | InputFile]:
+    """Document batches and :class:`InputFile` entries for every input under ``folder``.
+
+    Raises :class:`corpusprep.errors.InputError` when the folder is missing,
+    not a folder, or cannot be listed.
+    """
+    if batch_rows < 1:
+        raise ValueError(f"batch_rows = {batch_rows}: must be at least 1")
+    root_real, entries = input_entries(folder, config)
+    yield from read_entries(entries, config, root_real, batch_rows=batch_rows)
 
 
 def _read_entry(

@@ -225,3 +225,18 @@ def test_a_shard_task_that_cannot_see_the_shard_folder_says_so(tmp_path: Path) -
             eod_id=256, pad_id=257, bod_id=None, dtype=np.dtype("<u2"), folder=tmp_path / "missing",
             mapper=_Recorder(),
         )  # fmt: skip
+
+
+def test_a_first_pass_task_that_cannot_see_the_work_folder_says_so(tmp_path: Path) -> None:
+    from corpusprep.batchwork import StageTask, stage_inputs
+    from corpusprep.clean import CleanConfig
+    from corpusprep.exact import ExactConfig
+    from corpusprep.read import ReadConfig
+
+    task = StageTask(
+        index=0, entries=(), root_real=str(tmp_path), read=ReadConfig(), clean=CleanConfig(),
+        exact=ExactConfig(), near=NearConfig(), folder=str(tmp_path / "not-mounted"), batch_rows=16,
+        batch_text_bytes=1 << 20,
+    )  # fmt: skip
+    with pytest.raises(IntegrityError, match="every worker mounts at the same path"):
+        stage_inputs(task)

@@ -219,11 +219,20 @@ def test_a_worker_dying_inside_a_first_pass_task_is_retried_elsewhere(
 
 
 def test_a_worker_killed_from_outside_mid_map_changes_nothing(
-    client: Client, pydoc_slice: Path, pydoc_reference: dict[str, bytes], tmp_path: Path
+    client: Client,
+    pydoc_slice: Path,
+    pydoc_reference: dict[str, bytes],
+    tmp_path: Path,
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     # SIGKILL (as the out-of-memory killer does) to the worker process that is processing the first
     # batch, while the map draws its next batch (distributed docs, Client.run and Client.processing).
+    # First-pass tasks of about 256 KiB of input, so the slice makes several.
     import time
+
+    import corpusprep.pipeline as pipeline_module
+
+    monkeypatch.setattr(pipeline_module, "_PART_BYTES", 256 << 10)
 
     killed: list[str] = []
     inner = dask_mapper(client)
@@ -311,9 +320,11 @@ def test_global_steps_cut_into_many_tasks_give_the_local_bytes(
     client: Client, archive: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     # Small task sizes, so every global step becomes many tasks spread over both workers.
+    import corpusprep.pipeline as pipeline_module
     from corpusprep import barriers
     from corpusprep.definition import parse_definition
 
+    monkeypatch.setattr(pipeline_module, "_PART_BYTES", 4096)  # a few files per first-pass task
     for name, value in [
         ("EXACT_PARTITION_ROWS", 16),
         ("BAND_TASKS", 5),
@@ -338,7 +349,14 @@ def test_global_steps_cut_into_many_tasks_give_the_local_bytes(
         return inner(function, counted_items())
 
     remote = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "dask"), mapper=counting)
-    for name in ("_exact_partition", "_band_task", "_estimate_task", "_exact_task", "_pack_shard"):
+    for name in (
+        "stage_inputs",
+        "_exact_partition",
+        "_band_task",
+        "_estimate_task",
+        "_exact_task",
+        "_pack_shard",
+    ):
         assert counted.get(name, 0) > 1, f"{name}: {counted.get(name, 0)} tasks"
     assert _tree_bytes(remote.output) == _tree_bytes(local.output)
 

@@ -150,6 +150,42 @@ def test_rerun_and_worker_count_give_identical_bytes(
     assert _tree_bytes(parallel) == reference
 
 
+def test_the_cut_of_the_inputs_into_first_pass_tasks_changes_no_byte(
+    archive: Path, demo_output: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # One file per task (and, below, groups of three): the staged rows, the ledger (fixed row
+    # groups) and every other file come out the same as from the default cut.
+    import corpusprep.pipeline as pipeline_module
+
+    definition = load_definition(DEMO)
+    monkeypatch.setattr(pipeline_module, "_PART_BYTES", 1)
+    one_each = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "each"), workers=2)
+    monkeypatch.setattr(pipeline_module, "_PART_BYTES", 1 << 30)
+    monkeypatch.setattr(pipeline_module, "_PART_FILES", 3)
+    threes = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "threes"), workers=1)
+    reference = _tree_bytes(demo_output)
+    assert _tree_bytes(one_each.output) == reference
+    assert _tree_bytes(threes.output) == reference
+
+
+def test_input_groups_are_consecutive_runs_of_about_the_part_size(tmp_path: Path) -> None:
+    from corpusprep.pipeline import input_groups
+    from corpusprep.walk import Entry
+
+    sizes = [5, 5, 20, 1, 1, 1, 9]
+    entries = []
+    for number, size in enumerate(sizes):
+        path = tmp_path / f"{number}.txt"
+        path.write_bytes(b"x" * size)
+        entries.append(Entry(path.name, str(path), "file"))
+    entries.append(Entry("gone.txt", str(tmp_path / "gone.txt"), "file"))  # vanished: size 0
+    groups = input_groups(entries, part_bytes=10, part_files=2)
+    assert [entry for group in groups for entry in group] == entries
+    assert [[e.source for e in group] for group in groups] == [
+        ["0.txt", "1.txt"], ["2.txt"], ["3.txt", "4.txt"], ["5.txt", "6.txt"], ["gone.txt"],
+    ]  # fmt: skip
+
+
 def test_refuses_a_non_empty_output_unless_forced(archive: Path, tmp_path: Path) -> None:
     output = tmp_path / "out"
     output.mkdir()
