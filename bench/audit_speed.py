@@ -142,7 +142,7 @@ def measure(
     from corpusprep.audit import AuditConfig, _cleaned_items, read_items
     from corpusprep.audit_integrity import check_integrity
     from corpusprep.audit_leakage import ngram_overlap, packed_rows
-    from corpusprep.ngrams import StreamTables
+    from corpusprep.ngrams import StreamTables, id_bytes_of
 
     figures: dict[str, Any] = {"output": str(output), "workers": workers, "repeat": repeat}
     figures["read_cold"] = read_cold(output)
@@ -158,6 +158,7 @@ def measure(
     items = _cleaned_items(manifest, read_items(evaluation))[0] if evaluation is not None else []
     specials = {role: int(item["id"]) for role, item in manifest["tokenizer"]["special_tokens"].items()}
     decode = None
+    id_bytes = None
     if manifest["tokenizer"]["kind"] != "bytes":
         from tokenizers import Tokenizer
 
@@ -166,11 +167,15 @@ def measure(
         def decode(ids: list[int]) -> str:
             return str(hf.decode(ids, skip_special_tokens=False))
 
+        id_bytes = id_bytes_of(hf, frozenset(specials.values()))
+        figures["id_bytes"] = id_bytes is not None  # ids expanded to bytes, not decoded per document
+
     tables = StreamTables(
         end_of_document=specials["end_of_document"],
         specials=frozenset(specials.values()),
         byte_ids=manifest["tokenizer"]["kind"] == "bytes",
         decode=decode,
+        id_bytes=id_bytes,
     )
     seed = int(manifest["definition"]["pack"]["seed"])
     shards = {split: list(files or []) for split, files in state.shards.items()}

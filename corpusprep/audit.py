@@ -108,12 +108,15 @@ class AuditConfig:
     # train; below it, shared n-grams are reported as overlap. 0 = any shared n-gram (Brown et al. 2020).
     # Our default, 0.7, lets templated text share boilerplate sentences yet flags copied documents.
     contaminated_at: float = DEFAULT_CONTAMINATED_AT
+    workers: int = 1  # threads for the n-gram scan of train; the result is the same for any count
 
     def __post_init__(self) -> None:
         if not 1 <= self.ngram <= 1000:
             raise AuditInputError(f"--ngram {self.ngram}: must be between 1 and 1000")
         if not 0.0 <= self.contaminated_at <= 1.0:
             raise AuditInputError(f"--contaminated-at {self.contaminated_at}: must be between 0 and 1")
+        if self.workers < 1:
+            raise AuditInputError(f"--workers {self.workers}: must be at least 1")
         if self.chunk_tokens < 1:
             raise AuditInputError(f"chunk_tokens = {self.chunk_tokens}: must be at least 1")
 
@@ -375,7 +378,7 @@ class _Audit:
 
     def ngrams(self, state: Integrity, items: list[tuple[str, str]]) -> None:
         from corpusprep.audit_leakage import ngram_overlap, packed_rows
-        from corpusprep.ngrams import StreamTables
+        from corpusprep.ngrams import StreamTables, id_bytes_of
 
         manifest = state.manifest
         assert manifest is not None
@@ -397,6 +400,7 @@ class _Audit:
             return
         specials = {role: int(item["id"]) for role, item in tokenizer.get("special_tokens", {}).items()}
         decode = None
+        id_bytes = None
         if tokenizer.get("kind") != "bytes":
             from tokenizers import Tokenizer
 
@@ -405,11 +409,14 @@ class _Audit:
             def decode(ids: list[int]) -> str:
                 return str(hf.decode(ids, skip_special_tokens=False))
 
+            id_bytes = id_bytes_of(hf, frozenset(specials.values()))  # None: decode document by document
+
         tables = StreamTables(
             end_of_document=specials["end_of_document"],
             specials=frozenset(specials.values()),
             byte_ids=tokenizer.get("kind") == "bytes",
             decode=decode,
+            id_bytes=id_bytes,
         )
         seed = int(manifest["definition"]["pack"]["seed"])
         shards: dict[str, list[ShardFile]] = {
@@ -434,6 +441,7 @@ class _Audit:
             train_total=train_total,
             progress=self.progress,
             contaminated_at=self.config.contaminated_at,
+            workers=self.config.workers,
         )
         result.statistics["seconds"] = round(time.perf_counter() - started, 3)
         self.statistics["ngrams"] = result.statistics

@@ -249,6 +249,14 @@ def audit(
     skip_ngrams: Annotated[
         bool, typer.Option("--skip-ngrams", help="Leave out the n-gram check (it reads every shard).")
     ] = False,
+    scan_threads: Annotated[
+        int,
+        typer.Option(
+            "--workers",
+            min=1,
+            help="Threads that scan train for the n-gram check; the findings are the same for any count.",
+        ),
+    ] = 1,
     quiet: Annotated[bool, typer.Option("--quiet", help="No progress bars.")] = False,
     debug: DebugOption = False,
 ) -> None:
@@ -275,6 +283,7 @@ def audit(
                 against=against,
                 text_field=text_field,
                 contaminated_at=contaminated_at,
+                workers=scan_threads,
             )
             with progress_printer(enabled=not quiet) as progress:
                 report = audit_output(output, config, progress=progress)

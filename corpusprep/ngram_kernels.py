@@ -27,6 +27,7 @@ __all__ = [
     "build_set",
     "census",
     "documents",
+    "expand_ids",
     "find_marked",
     "hash_words",
     "normalise_tokens",
@@ -136,6 +137,30 @@ def normalise_tokens(tokens: np.ndarray, lower: np.ndarray) -> np.ndarray:
         value = tokens[i]
         data[i] = lower[value] if value >= 0 and value < table else 0x20
     return data
+
+
+@_jit
+def expand_ids(tokens: np.ndarray, offsets: np.ndarray, flat: np.ndarray, end_of_document: int) -> np.ndarray:
+    """The bytes of each id (``flat[offsets[t]:offsets[t + 1]]``), end-of-document ids as 256.
+
+    Ids must be below ``offsets.size - 1``.
+    """
+    total = 0
+    for i in range(tokens.size):
+        value = tokens[i]
+        total += 1 if value == end_of_document else offsets[value + 1] - offsets[value]
+    out = np.empty(total, dtype=np.uint16)
+    at = 0
+    for i in range(tokens.size):
+        value = tokens[i]
+        if value == end_of_document:
+            out[at] = 256
+            at += 1
+            continue
+        for k in range(offsets[value], offsets[value + 1]):
+            out[at] = flat[k]
+            at += 1
+    return out
 
 
 @_jit

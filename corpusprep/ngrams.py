@@ -70,6 +70,7 @@ from corpusprep.shingles import punctuation_table
 __all__ = [
     "DEFAULT_NGRAM",
     "HashedChunk",
+    "IdBytes",
     "NgramSet",
     "StreamTables",
     "byte_separators",
@@ -80,6 +81,7 @@ __all__ = [
     "hash_stream_chunk",
     "hash_texts",
     "hash_texts_python",
+    "id_bytes_of",
     "ngram_hashes_scalar",
     "normal_text",
     "normal_words",
@@ -336,19 +338,111 @@ def _encode_normal(normal: list[bytes]) -> tuple[np.ndarray, np.ndarray]:
 
 # --------------------------------------------------------------------------- token streams
 @dataclass(frozen=True, slots=True, kw_only=True)
+class IdBytes:
+    """Per id the UTF-8 bytes it adds to a decoded text: ``flat[offsets[i]:offsets[i + 1]]``."""
+
+    flat: np.ndarray
+    offsets: np.ndarray
+
+
+def _byte_level_chars() -> dict[str, int]:
+    """The byte-level alphabet: the character standing for each byte (GPT-2's byte-to-unicode
+    table, Radford et al. 2019, as HF ``tokenizers``' ByteLevel uses it; from memory, checked
+    against ``pre_tokenizers.ByteLevel.alphabet()`` and the decoder in :func:`id_bytes_of`)."""
+    kept = [*range(ord("!"), ord("~") + 1), *range(ord("¡"), ord("¬") + 1), *range(ord("®"), ord("ÿ") + 1)]
+    chars = {byte: chr(byte) for byte in kept}
+    extra = 0
+    for byte in range(256):
+        if byte not in chars:
+            chars[byte] = chr(256 + extra)
+            extra += 1
+    return {char: byte for byte, char in chars.items()}
+
+
+def id_bytes_of(tokenizer: Any, specials: frozenset[int], *, samples: int = 200) -> IdBytes | None:
+    """Per-id bytes of an HF ``tokenizers`` tokenizer whose decoding is concatenation, else None.
+
+    That holds for a Fuse decoder (the characters and words kinds: the text is the
+    tokens' strings joined) and a ByteLevel decoder (the bpe kind, byte-level files: the
+    text is the tokens' bytes joined, decoded as UTF-8 with U+FFFD for bad sequences).
+    Anything else (another decoder, a normalizer-dependent decoder, added tokens that
+    are not special) gives None, and documents are decoded one by one. The property is
+    then checked, not assumed: every id alone, and ``samples`` seeded random id
+    sequences, must decode exactly as the joined bytes do; any difference gives None.
+    """
+    import json
+
+    config = json.loads(tokenizer.to_str())
+    kind = (config.get("decoder") or {}).get("type")
+    if kind not in ("ByteLevel", "Fuse"):
+        return None
+    if any(int(item["id"]) not in specials for item in config.get("added_tokens") or []):
+        return None
+    size = int(tokenizer.get_vocab_size(with_added_tokens=True))
+    inverse = _byte_level_chars()
+    if kind == "ByteLevel":
+        from tokenizers import pre_tokenizers
+
+        if set(pre_tokenizers.ByteLevel.alphabet()) != set(inverse):
+            return None
+    pieces: list[bytes] = []
+    for value in range(size):
+        token = tokenizer.id_to_token(value)
+        if token is None:
+            return None
+        if value in specials:
+            pieces.append(b"")
+        elif kind == "ByteLevel":
+            if any(char not in inverse for char in token):
+                return None
+            pieces.append(bytes(inverse[char] for char in token))
+        else:
+            pieces.append(token.encode("utf-8"))
+    ordinary = [value for value in range(size) if value not in specials]
+    rng = np.random.default_rng(0)
+    sequences = [[value] for value in ordinary] + [
+        rng.choice(ordinary, size=int(rng.integers(2, 65))).tolist()
+        for _ in range(samples if ordinary else 0)
+    ]
+    decoded = tokenizer.decode_batch(sequences, skip_special_tokens=False)
+    for sequence, text in zip(sequences, decoded, strict=True):
+        if b"".join(pieces[value] for value in sequence).decode("utf-8", errors="replace") != text:
+            return None
+    offsets = np.cumsum([0, *map(len, pieces)], dtype=np.int64)
+    return IdBytes(flat=np.frombuffer(b"".join(pieces), dtype=np.uint8).copy(), offsets=offsets)
+
+
+_EXPANDED_END = 256
+
+
+def _expanded(tokens: np.ndarray, tables: StreamTables) -> np.ndarray | None:
+    """The ids of a chunk as bytes (:class:`IdBytes`), end-of-document ids as 256; None if not possible."""
+    table = tables.id_bytes
+    if table is None or tables.byte_ids:
+        return None
+    if tokens.size and (int(tokens.min()) < 0 or int(tokens.max()) >= table.offsets.size - 1):
+        return None
+    expanded: np.ndarray = kernels.expand_ids(tokens, table.offsets, table.flat, tables.end_of_document)
+    return expanded
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
 class StreamTables:
     """How the ids of a split's token stream become normalised bytes.
 
     ``end_of_document`` ends a document; every id in ``specials`` (the end and
     begin of document and pad) separates words and is not text. With
     ``byte_ids`` true, ids 0..255 are UTF-8 bytes; otherwise ``decode`` turns
-    the ids of one document into text.
+    the ids of one document (specials left out) into text, and ``id_bytes``, when
+    given (:func:`id_bytes_of`), holds the bytes each id adds to that text, so that
+    the ids are expanded to bytes and take the byte path.
     """
 
     end_of_document: int
     specials: frozenset[int]
     byte_ids: bool
     decode: Callable[[list[int]], str] | None = None
+    id_bytes: IdBytes | None = None
 
     def lookup(self, size: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Per id below ``size``: lowercase byte, separates words, ASCII whitespace or special."""
@@ -413,6 +507,10 @@ def hash_stream_chunk(tokens: np.ndarray, tables: StreamTables, ngram: int) -> H
     size = _table_size(tokens, tables)
     kind = _id_tables(size, tables.specials)[1]
     document_ends, lengths = kernels.documents(tokens, kind, tables.end_of_document)
+    expanded = _expanded(tokens, tables)
+    if expanded is not None:
+        ends = np.flatnonzero(expanded == _EXPANDED_END)
+        return _hash_byte_ids(expanded, _EXPANDED_END + 1, ends, lengths, ngram)
     if not tables.byte_ids:
         assert tables.decode is not None
         decode = tables.decode
@@ -595,6 +693,14 @@ def scan_chunk(
     if ngram < 1:
         raise ValueError(f"ngram = {ngram}: must be at least 1")
     tokens = _contiguous_ids(tokens)
+    expanded = _expanded(tokens, tables)
+    if expanded is not None:
+        bytes_tables = StreamTables(
+            end_of_document=_EXPANDED_END, specials=frozenset({_EXPANDED_END}), byte_ids=True
+        )
+        scan_chunk(expanded, bytes_tables, ngram, members, marks, document_base)
+        kind = _id_tables(_table_size(tokens, tables), tables.specials)[1]
+        return kernels.documents(tokens, kind, tables.end_of_document)[1]
     if not tables.byte_ids:
         chunk = hash_stream_chunk(tokens, tables, ngram)
         position = members.find(chunk.hashes)
@@ -658,4 +764,11 @@ def warm_up(token_dtypes: Sequence[np.dtype[Any] | type] = (np.uint16,)) -> floa
         tables = StreamTables(end_of_document=_TEXT_END, specials=frozenset({_TEXT_END}), byte_ids=True)
         hash_stream_chunk(tokens, tables, 1)
         scan_chunk(tokens, tables, 1, members, members.new_marks(), 0)
+        table = IdBytes(flat=np.frombuffer(b"ab", dtype=np.uint8).copy(), offsets=np.array([0, 1, 2, 2, 2]))
+        expanding = StreamTables(
+            end_of_document=2, specials=frozenset({2, 3}), byte_ids=False, id_bytes=table
+        )
+        ids = np.array([0, 1, 3, 2], dtype=dtype)
+        hash_stream_chunk(ids, expanding, 1)
+        scan_chunk(ids, expanding, 1, members, members.new_marks(), 0)
     return time.perf_counter() - started

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import unicodedata
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -31,6 +32,7 @@ from corpusprep.ngrams import (
     hash_stream_chunk,
     hash_texts,
     hash_texts_python,
+    id_bytes_of,
     ngram_hashes_scalar,
     normal_words,
     scan_chunk,
@@ -333,3 +335,76 @@ def test_warm_up_compiles_every_kernel() -> None:
     tables = StreamTables(end_of_document=EOD, specials=frozenset({EOD, PAD}), byte_ids=True)
     wide = np.array([*"Ünïcode DOCK".encode(), EOD], dtype=np.uint32)
     assert hash_stream_chunk(wide, tables, 1).hashes.tolist() == ngram_hashes_scalar("Ünïcode DOCK", 1)
+
+
+# --------------------------------------------------------------------------- ids expanded to bytes
+# Invented ferry-archive text (the project's demo scenario) with accents, CJK and punctuation.
+FERRY = [
+    "The Ferry to Dock B leaves at 06:40; the harbour-master's log says: DELAYED (fog).",
+    "Été timetable — Straße des Hafens, pier 3… fares 2,50 € (港 terminal).",
+    "Cooperative minutes: members voted to repaint the MV Larch; the vote was 14-3.",
+]
+
+
+@pytest.fixture(scope="module", params=["characters", "words", "bpe"])
+def trained(request: pytest.FixtureRequest, tmp_path_factory: pytest.TempPathFactory) -> tuple[Any, Any]:
+    """Our tokenizer of one trained kind and the HF tokenizer loaded from its saved file."""
+    from tokenizers import Tokenizer as HfTokenizer
+
+    from corpusprep.tokens import TokenizerConfig, build_tokenizer
+
+    size = 400 if request.param == "bpe" else 120
+    ours = build_tokenizer(
+        TokenizerConfig(kind=request.param, min_count=1, vocab_size=size), lambda: iter(FERRY * 3)
+    )
+    path = tmp_path_factory.mktemp("tokenizer") / "tokenizer.json"
+    ours.save(path)
+    return ours, HfTokenizer.from_file(str(path))
+
+
+@settings(max_examples=40, deadline=None)
+@given(texts=st.lists(st.one_of(TEXT, st.sampled_from(FERRY)), min_size=1, max_size=5), n=st.integers(1, 4))
+def test_ids_expanded_to_bytes_equal_decoding(trained: tuple[Any, Any], texts: list[str], n: int) -> None:
+    """For the trained kinds (Fuse and ByteLevel decoders) joining per-id bytes is decoding."""
+    ours, hf = trained
+    specials = frozenset(ours.special_ids().values())
+    end = ours.special_ids()["end_of_document"]
+    id_bytes = id_bytes_of(hf, specials)
+    assert id_bytes is not None
+    ids: list[int] = []
+    for encoded in ours.encode_batch(texts):
+        ids += [*encoded.tolist(), end]
+    stream = np.array(ids, dtype=np.uint32)
+    decoding = StreamTables(
+        end_of_document=end,
+        specials=specials,
+        byte_ids=False,
+        decode=lambda values: str(hf.decode(values, skip_special_tokens=False)),
+    )
+    expanding = StreamTables(
+        end_of_document=end, specials=specials, byte_ids=False, decode=decoding.decode, id_bytes=id_bytes
+    )
+    slow, fast = hash_stream_chunk(stream, decoding, n), hash_stream_chunk(stream, expanding, n)
+    assert fast.hashes.tolist() == slow.hashes.tolist()
+    assert fast.lengths.tolist() == slow.lengths.tolist()
+    assert [fast.ngram_text(i) for i in range(fast.hashes.size)] == [
+        slow.ngram_text(i) for i in range(slow.hashes.size)
+    ]
+    members = NgramSet(hash_texts(texts[:1], n).hashes)
+    marks_slow, marks_fast = members.new_marks(), members.new_marks()
+    assert scan_chunk(stream, decoding, n, members, marks_slow, 3).tolist() == slow.lengths.tolist()
+    assert scan_chunk(stream, expanding, n, members, marks_fast, 3).tolist() == slow.lengths.tolist()
+    assert members.first_documents(marks_fast).tolist() == members.first_documents(marks_slow).tolist()
+
+
+def test_a_decoder_that_is_not_concatenation_is_decoded_per_document() -> None:
+    # HF WordPiece decoder joins with spaces and glues "##" pieces: not plain concatenation
+    from tokenizers import Tokenizer as HfTokenizer
+    from tokenizers import decoders, models
+
+    hf = HfTokenizer(models.WordLevel({"<eod>": 0, "dock": 1, "##s": 2, "b": 3}, unk_token="<eod>"))
+    hf.decoder = decoders.WordPiece()
+    assert id_bytes_of(hf, frozenset({0})) is None
+    hf.decoder = decoders.Fuse()
+    table = id_bytes_of(hf, frozenset({0}))
+    assert table is not None and table.flat.tobytes() == b"dock##sb"
