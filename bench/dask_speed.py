@@ -84,7 +84,7 @@ def _measured(function: Callable[[Any], Any], item: Any) -> tuple[Any, float, fl
 
 #: Mapped task function -> the phase it belongs to.
 _MAPPED_PHASES = {
-    "prepare_batch": "first pass: read, clean, hashes, signatures (mapped)",
+    "stage_inputs": "first pass: read, clean, hashes, signatures (mapped)",
     "_exact_partition": "exact duplicates: key partitions (mapped)",
     "_band_task": "near duplicates: LSH band groups (mapped)",
     "_estimate_task": "near duplicates: pair checks (mapped)",

@@ -58,6 +58,13 @@ INSTALL_HINT = "pip install 'corpusprep[cluster]' (it installs dask[distributed]
 _SCHEDULER_HTTP = {"dashboard_address": "127.0.0.1:0"}
 #: Tasks kept outstanding per worker thread: one running, one waiting, as in the local pool.
 _PER_THREAD = 2
+#: Dask starts worker processes with ``MALLOC_TRIM_THRESHOLD_=65536`` (its config
+#: ``distributed.nanny.pre-spawn-environ``), so glibc hands freed memory back to the system
+#: at once. Our tasks allocate and free many NumPy temporaries; with that setting, shingling
+#: the same 600 documents took 0.64 s in a Dask worker against 0.41 s in a plain process, and
+#: 0.42-0.51 s in a worker started without it (measured here, 2 cores). The local clusters
+#: this module starts therefore leave glibc's default, dynamic threshold in place.
+_UNSET_IN_WORKERS = ("MALLOC_TRIM_THRESHOLD_",)
 
 
 class ClusterError(CorpusprepError, ConnectionError):
@@ -204,6 +211,12 @@ def dask_engine(scheduler: str | None, workers: int) -> Iterator[Mapper]:
     with contextlib.ExitStack() as stack:
         if scheduler is None:
             where = "local Dask cluster"
+            import dask
+
+            environ = dict(dask.config.get("distributed.nanny.pre-spawn-environ", default={}) or {})
+            for name in _UNSET_IN_WORKERS:
+                environ.pop(name, None)
+            stack.enter_context(dask.config.set({"distributed.nanny.pre-spawn-environ": environ}))
             try:
                 cluster = stack.enter_context(
                     make_cluster(

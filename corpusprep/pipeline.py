@@ -86,7 +86,7 @@ _CHUNK_ROWS = 1 << 16
 _BATCH_ROWS = 1024
 #: Input bytes (on disk) in one first-pass task, and most files in one: the work of a task is
 #: reading, cleaning and signing about this much, written by the worker to its own part file.
-_PART_BYTES = 16 << 20
+_PART_BYTES = 4 << 20
 _PART_FILES = 1024
 _PARTS = "parts"
 _BATCH_TEXT_BYTES = 4 << 20
