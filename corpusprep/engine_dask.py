@@ -27,8 +27,12 @@ its partial folder, so nothing is published.
 address, of a :class:`distributed.LocalCluster` on this machine (worker
 processes with one thread each, loopback only, no dashboard).
 
-The global steps (exact duplicates, near-duplicate clusters, split, tokenizer
-training, packing) still run in the driver process in this version.
+Every map of a run goes through here: first-pass file runs, exact-duplicate
+key partitions, LSH band groups, pair checks, encoding and shard writing (see
+:mod:`corpusprep.barriers`). Tasks read and write the run's work folder by
+path, so with a remote scheduler the output folder must be on storage that
+every worker mounts at the same path. The union-find, the split and the
+tokenizer training run in the driver.
 
 Install the engine with ``pip install 'corpusprep[cluster]'`` (``dask[distributed]``).
 """

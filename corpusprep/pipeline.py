@@ -1,11 +1,16 @@
 """The whole job: read, clean, exact, near, split, tokenize, pack, ledger, manifest.
 
-Per-batch stages run through a mapper (:mod:`corpusprep.pool`; local processes by default); the
-global steps (exact duplicates, near-duplicate clusters, split, tokenizer
-and packing) are barriers between them. Between the two passes over the
-corpus the cleaned documents live in an Arrow IPC file in the run's work
-folder, so memory is bounded by the batch size plus a few fixed-width
-arrays per document (keys, status, offsets), never by the text.
+All work runs as tasks through a mapper (:mod:`corpusprep.pool`, local
+processes by default, or :mod:`corpusprep.engine_dask`): the first pass
+(each task reads a run of input files, cleans, hashes and signs them and
+writes a part file), the exact-duplicate partitions, the LSH band groups and
+pair checks (:mod:`corpusprep.barriers`), encoding, and the shard writing.
+The driver keeps fixed-width arrays per document (status, keys, split,
+offsets), joins the part files into the staged documents, runs the
+union-find, the split and the tokenizer training, and writes the ledger and
+the manifest. Between the two passes over the corpus the cleaned documents
+live in an Arrow IPC file in the run's work folder, so memory is bounded by
+the batch size plus those arrays, never by the text.
 
 A run writes into a hidden sibling of the output folder and publishes it by
 renaming once the manifest, written last, is in place.
