@@ -387,6 +387,11 @@ def scan_tokens(
     rn = _ONE
     for _ in range(ngram):
         rn = rn * _R
+    # n-grams wait in a small batch and are looked up together: the look-ups of a batch do not
+    # depend on each other, so the processor overlaps their cache misses
+    pending_grams = np.empty(_BATCH, dtype=np.uint64)
+    pending_documents = np.empty(_BATCH, dtype=np.int64)
+    pending = 0
     end_is_special = 0 <= end_of_document < table and kind[end_of_document] == SPECIAL
     slot = 0
     rolling = _ZERO
@@ -414,7 +419,12 @@ def scan_tokens(
                 length = 0
                 run += 1
                 if run >= ngram:
-                    _record(_mix(rolling), bits, shift, marks, slot_mask, document_base + document)
+                    pending_grams[pending] = _mix(rolling)
+                    pending_documents[pending] = document_base + document
+                    pending += 1
+                    if pending == _BATCH:
+                        _record_all(pending_grams, pending_documents, pending, bits, shift, marks, slot_mask)
+                        pending = 0
             if value == end_of_document:
                 lengths[document] = i - document_start - specials - end_is_special
                 document += 1
@@ -429,18 +439,46 @@ def scan_tokens(
             length = 0
             run += 1
             if run >= ngram:
-                _record(_mix(rolling), bits, shift, marks, slot_mask, document_base + document)
+                pending_grams[pending] = _mix(rolling)
+                pending_documents[pending] = document_base + document
+                pending += 1
+                if pending == _BATCH:
+                    _record_all(pending_grams, pending_documents, pending, bits, shift, marks, slot_mask)
+                    pending = 0
         if injected == run_begin.size:
             break
         for index in range(run_offsets[injected], run_offsets[injected + 1]):
             slot, rolling = _roll(run_words[index], ring, slot, rolling, rn)
             run += 1
             if run >= ngram:
-                _record(_mix(rolling), bits, shift, marks, slot_mask, document_base + document)
+                pending_grams[pending] = _mix(rolling)
+                pending_documents[pending] = document_base + document
+                pending += 1
+                if pending == _BATCH:
+                    _record_all(pending_grams, pending_documents, pending, bits, shift, marks, slot_mask)
+                    pending = 0
         i = run_end[injected]
         injected += 1
     if document < lengths.size:
         lengths[document] = size - document_start - specials
+    _record_all(pending_grams, pending_documents, pending, bits, shift, marks, slot_mask)
+
+
+_BATCH = 1024
+
+
+@_jit
+def _record_all(
+    grams: np.ndarray,
+    documents: np.ndarray,
+    count: int,
+    bits: np.ndarray,
+    shift: np.uint64,
+    marks: np.ndarray,
+    slot_mask: int,
+) -> None:
+    for k in range(count):
+        _record(grams[k], bits, shift, marks, slot_mask, documents[k])
 
 
 @_jit
