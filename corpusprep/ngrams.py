@@ -43,12 +43,23 @@ same values with Python integers; the tests hold the two together.
 Token streams
 -------------
 With the byte tokenizer the stream of a split is UTF-8 bytes, special ids
-(256 and up) between documents. Documents made only of ASCII bytes are
-normalised by table look-up (tables built from ``str.lower``,
-``str.isspace`` and :mod:`unicodedata` for the 128 ASCII characters, so they
-agree with the rule by construction); a document holding any byte >= 128 is
-decoded and normalised by :func:`normal_words`. For any other tokenizer every
-document is decoded with its ``decode`` function and normalised in Python.
+(256 and up) between documents. ASCII bytes are normalised by table look-up
+(tables built from ``str.lower``, ``str.isspace`` and :mod:`unicodedata` for
+the 128 ASCII characters, so they agree with the rule by construction); a run
+of bytes between ASCII whitespace that holds a byte >= 128 is decoded and
+normalised by :func:`normal_words`. A tokenizer whose decoding is the
+concatenation of per-id bytes (:func:`id_bytes_of`: checked, not assumed) has
+its ids expanded to bytes, which then take the same path; any other tokenizer
+has every document decoded with its ``decode`` function and normalised in
+Python.
+
+Speed
+-----
+The hashing, the look-ups and the stream passes are compiled loops
+(:mod:`corpusprep.ngram_kernels`, numba). The NumPy functions here
+(:func:`hash_normalised`, :meth:`NgramSet.find_reference`) and the plain-Python
+ones (:func:`normal_words`, :func:`ngram_hashes_scalar`) are their references in
+the tests.
 """
 
 from __future__ import annotations
