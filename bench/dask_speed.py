@@ -89,7 +89,7 @@ _MAPPED_PHASES = {
     "_band_task": "near duplicates: LSH band groups (mapped)",
     "_estimate_task": "near duplicates: pair checks (mapped)",
     "_exact_task": "near duplicates: pair checks (mapped)",
-    "encode_texts": "encode (mapped)",
+    "encode_staged": "encode (mapped)",
     "_pack_shard": "pack: shard tasks (mapped)",
 }
 _DRIVER_ONLY = "driver alone: staging, union-find, split, tokenizer training, ledger, manifest"

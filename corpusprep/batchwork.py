@@ -12,6 +12,7 @@ keys, groups) and the counts travel back to the driver, never the texts.
 
 from __future__ import annotations
 
+import contextlib
 import os
 from collections import Counter
 from collections.abc import Iterator
@@ -29,14 +30,17 @@ from corpusprep.exact import ExactConfig, exact_keys
 from corpusprep.near import NearConfig, signature_batch
 from corpusprep.read import InputFile, ReadConfig, read_entries
 from corpusprep.schema import DOC_SCHEMA, KEPT, REJECTED, STATUSES
+from corpusprep.split import SPLITS
 from corpusprep.tokens import Tokenizer
 from corpusprep.walk import Entry
 
 __all__ = [
+    "EncodeTask",
     "PreparedBatch",
     "StagePart",
     "StageTask",
     "bounded_slices",
+    "encode_staged",
     "encode_texts",
     "hex_pair",
     "prepare_batch",
@@ -232,3 +236,60 @@ def stage_inputs(task: StageTask) -> StagePart:
         signature_dtype=signature_dtype,
         permutations=permutations,
     )
+
+
+@dataclass(frozen=True, slots=True, kw_only=True)
+class EncodeTask:
+    """One encoding task: some consecutive batches of the staged documents and each row's split."""
+
+    index: int
+    documents: str  # the staged documents file (work folder)
+    first_batch: int
+    batches: int
+    splits: np.ndarray  # int8 per row of those batches: index into SPLITS, -1 = not encoded
+    folder: str  # where the token parts go (work folder)
+    dtype: str
+
+    def part(self, split: str) -> Path:
+        return Path(self.folder) / f"tokens-{split}-{self.index:06d}.raw"
+
+
+def encode_staged(tokenizer: Tokenizer, task: EncodeTask) -> np.ndarray:
+    """Encode the rows of ``task`` that have a split; write their ids, per split, to part files.
+
+    The worker reads the texts from the staged documents itself. Ids go to
+    ``tokens-{split}-{index}.raw`` in row order, as ``task.dtype``; the result
+    is each row's token count (-1 for rows without a split).
+    """
+    folder = Path(task.folder)
+    if not folder.is_dir() or not Path(task.documents).is_file():
+        raise IntegrityError(
+            f"{folder}: this worker cannot see the run's work folder; with a remote cluster the output "
+            "folder must be on storage that every worker mounts at the same path"
+        )
+    dtype = np.dtype(task.dtype)
+    lengths = np.full(task.splits.size, -1, dtype=np.int64)
+    temporary = {split: task.part(split).with_name(f".{task.part(split).name}.partial") for split in SPLITS}
+    with contextlib.ExitStack() as stack:
+        handles = {split: stack.enter_context(open(path, "wb")) for split, path in temporary.items()}
+        source = stack.enter_context(pa.memory_map(task.documents))
+        reader = pa.ipc.open_file(source)
+        position = 0
+        for number in range(task.first_batch, task.first_batch + task.batches):
+            batch = reader.get_batch(number)
+            codes = task.splits[position : position + batch.num_rows]
+            wanted = np.flatnonzero(codes >= 0)
+            texts = batch.column("text").take(pa.array(wanted, type=pa.int64())).to_pylist()
+            encoded = tokenizer.encode_batch([str(text) for text in texts])
+            for row, ids in zip(wanted.tolist(), encoded, strict=True):
+                data = np.asarray(ids).astype(dtype, copy=False)
+                handles[SPLITS[int(codes[row])]].write(data.tobytes())
+                lengths[position + row] = data.size
+            position += batch.num_rows
+    if position != task.splits.size:
+        raise IntegrityError(
+            f"encoding task {task.index}: {position} staged rows, but {task.splits.size} split codes"
+        )
+    for split, path in temporary.items():
+        os.replace(path, task.part(split))
+    return lengths

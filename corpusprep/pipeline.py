@@ -35,7 +35,7 @@ import pyarrow as pa
 
 from corpusprep import __version__
 from corpusprep.barriers import MappedPairWork, SignatureStore, first_occurrences_mapped
-from corpusprep.batchwork import StageTask, encode_texts, hex_pair, stage_inputs
+from corpusprep.batchwork import EncodeTask, StageTask, encode_staged, hex_pair, stage_inputs
 from corpusprep.checkpoint import Checkpoints, input_fingerprint, step_keys
 from corpusprep.definition import Definition
 from corpusprep.errors import InputError, IntegrityError, TooManyRejectedError
@@ -373,40 +373,58 @@ class _Run:
         self.tokenizer = build_tokenizer(definition.tokenizer, self._train_texts, base=definition.base)
         self.dtype = smallest_dtype(self.tokenizer.vocab_size)
         self.token_count = np.full(self.rows, -1, dtype=np.int64)
-        offsets: dict[str, list[int]] = {name: [] for name in SPLITS}
-        lengths: dict[str, list[int]] = {name: [] for name in SPLITS}
+        codes = np.array(
+            [SPLITS.index(split) if split is not None else -1 for split in self.split_of], dtype=np.int8
+        )
+        documents = self.work / "documents.arrow"
+        with pa.memory_map(str(documents)) as source:
+            reader = pa.ipc.open_file(source)
+            batch_rows = [reader.get_batch(index).num_rows for index in range(reader.num_record_batches)]
+        starts = np.concatenate(([0], np.cumsum(batch_rows, dtype=np.int64)))
+        tasks = [
+            EncodeTask(
+                index=index,
+                documents=str(documents),
+                first_batch=index,
+                batches=1,
+                splits=codes[starts[index] : starts[index + 1]],
+                folder=str(self.work),
+                dtype=self.dtype.str,
+            )
+            for index in range(len(batch_rows))
+        ]
+        offsets: dict[str, list[np.ndarray]] = {name: [] for name in SPLITS}
+        lengths: dict[str, list[np.ndarray]] = {name: [] for name in SPLITS}
         written = dict.fromkeys(SPLITS, 0)
-        encode = functools.partial(encode_texts, self.tokenizer)
-        row_lists: list[list[int]] = []
-
-        def kept_texts() -> Iterator[list[str]]:
-            for rows, texts in self._staged_texts(lambda split: split is not None):
-                row_lists.append(rows)
-                yield texts
-
-        with contextlib.ExitStack() as stack:
-            files = {
-                name: stack.enter_context(open(self.work / f"tokens-{name}.raw", "wb")) for name in SPLITS
-            }
-            done = 0
-            for batch_index, encoded in enumerate(self.mapper(encode, kept_texts())):
-                for row, ids in zip(row_lists[batch_index], encoded, strict=True):
-                    split = self.split_of[row]
-                    assert split is not None
-                    data = np.asarray(ids).astype(self.dtype, copy=False)
-                    files[split].write(data.tobytes())
-                    offsets[split].append(written[split])
-                    lengths[split].append(len(data))
-                    written[split] += len(data)
-                    self.token_count[row] = len(data)
-                done += len(row_lists[batch_index])
-                row_lists[batch_index] = []
-                self.progress("tokenize", done, None)
-        self.offsets = {name: np.array(offsets[name], dtype=np.int64) for name in SPLITS}
-        self.lengths = {name: np.array(lengths[name], dtype=np.int64) for name in SPLITS}
+        encode = functools.partial(encode_staged, self.tokenizer)
+        done = 0
+        for task, counts in zip(tasks, self.mapper(encode, tasks), strict=True):
+            first = int(starts[task.index])
+            encoded = np.flatnonzero(counts >= 0)
+            self.token_count[first + encoded] = counts[encoded]
+            for code, name in enumerate(SPLITS):
+                mine = counts[task.splits == code]
+                ends = np.cumsum(mine, dtype=np.int64)
+                offsets[name].append(written[name] + ends - mine)
+                lengths[name].append(mine)
+                written[name] += int(ends[-1]) if ends.size else 0
+            done += int(encoded.size)
+            self.progress("tokenize", done, None)
+        for name in SPLITS:
+            with open(self.work / f"tokens-{name}.raw", "wb") as target:
+                for task in tasks:
+                    with open(task.part(name), "rb") as part:
+                        shutil.copyfileobj(part, target, 1 << 20)
+                    task.part(name).unlink()
+        self.offsets = {
+            name: np.concatenate(offsets[name]) if offsets[name] else np.zeros(0, np.int64) for name in SPLITS
+        }
+        self.lengths = {
+            name: np.concatenate(lengths[name]) if lengths[name] else np.zeros(0, np.int64) for name in SPLITS
+        }
         self.stages["tokenize"] = {
             "kind": self.tokenizer.kind,
-            "documents": int(sum(len(v) for v in offsets.values())),
+            "documents": int(sum(len(v) for v in self.offsets.values())),
             "tokens": int(sum(written.values())),
         }
         self.tokenizer.save(self.partial / TOKENIZER_FILE)

@@ -355,6 +355,7 @@ def test_global_steps_cut_into_many_tasks_give_the_local_bytes(
         "_band_task",
         "_estimate_task",
         "_exact_task",
+        "encode_staged",
         "_pack_shard",
     ):
         assert counted.get(name, 0) > 1, f"{name}: {counted.get(name, 0)} tasks"
@@ -449,7 +450,7 @@ def test_a_dask_run_interrupted_while_packing_resumes_from_its_checkpoint(
         run_pipeline(definition, mapper=interrupting)
     assert (tmp_path / ".demo.partial").is_dir()
     output = run_pipeline(definition, mapper=recording).output
-    assert "prepare_batch" not in mapped and "encode_texts" not in mapped
+    assert "stage_inputs" not in mapped and "encode_staged" not in mapped
     assert "_pack_shard" in mapped
     assert _tree_bytes(output) == demo_reference
 
