@@ -38,7 +38,7 @@ from corpusprep.definition import load_definition
 from corpusprep.engine_dask import ClusterError, dask_engine, dask_mapper
 from corpusprep.errors import WorkerDiedError
 from corpusprep.pipeline import run_pipeline
-from corpusprep.pool import Mapper
+from corpusprep.pool import Mapper, local_mapper
 
 ROOT = Path(__file__).parent.parent
 
@@ -427,8 +427,9 @@ def test_cli_takes_the_engine_from_the_definition(
     assert started == [(None, 2)], "--engine local overrides the definition"
 
 
+@pytest.mark.parametrize("resume_on", ["dask", "local"])
 def test_a_dask_run_interrupted_while_packing_resumes_from_its_checkpoint(
-    client: Client, archive: Path, demo_reference: dict[str, bytes], tmp_path: Path
+    client: Client, archive: Path, demo_reference: dict[str, bytes], tmp_path: Path, resume_on: str
 ) -> None:
     # An interrupt keeps the partial folder and its checkpoints (corpusprep.pipeline); the next run
     # through Dask resumes after the last checkpoint: no first-pass task runs again.
@@ -441,9 +442,11 @@ def test_a_dask_run_interrupted_while_packing_resumes_from_its_checkpoint(
             raise KeyboardInterrupt
         return inner(function, items)
 
+    resume_mapper = inner if resume_on == "dask" else local_mapper(1)
+
     def recording(function: Callable[[Any], Any], items: Iterable[Any]) -> Iterator[Any]:
         mapped.append(getattr(getattr(function, "func", function), "__name__", "?"))
-        return inner(function, items)
+        return resume_mapper(function, items)
 
     definition = load_definition(DEMO).with_folders(input=archive, output=tmp_path / "demo")
     with pytest.raises(KeyboardInterrupt):
