@@ -444,8 +444,10 @@ class _Run:
         specials = self.tokenizer.special_ids()
         shard_folder = self.partial / SHARD_FOLDER
         shard_folder.mkdir(exist_ok=True)
-        for stale in shard_folder.glob(f"{split}-*"):
-            stale.unlink()
+        # Earlier shards of this split, and files a killed shard task left half written.
+        for pattern in (f"{split}-*", f".{split}-*.partial"):
+            for stale in shard_folder.glob(pattern):
+                stale.unlink()
         self.splits = {name: info for name, info in self.splits.items() if name != split}
         count = len(self.offsets[split])
         path = self.work / f"tokens-{split}.raw"

@@ -132,3 +132,20 @@ def test_a_changed_pack_setting_keeps_the_trained_tokenizer(archive: Path, tmp_p
     assert not {"read", "tokenize"} & stages_seen, "the tokenizer checkpoint must be reused"
     fresh = run_pipeline(changed.with_folders(output=tmp_path / "fresh"), workers=1).output
     assert _tree(output) == _tree(fresh)
+
+
+@pytest.mark.slow
+def test_half_written_shards_of_a_killed_run_do_not_reach_the_output(
+    archive: Path, reference: dict[str, bytes], tmp_path: Path
+) -> None:
+    # A shard task killed while writing leaves a hidden '.NAME.partial' file (shards.write_shard
+    # writes there, then renames); the resumed run must repack the split without it.
+    output = tmp_path / "out"
+    env = dict(os.environ, CORPUSPREP_FAULT_KILL_AFTER="pack_train")
+    killed = subprocess.run(_command(archive, output), env=env, capture_output=True, text=True)
+    assert killed.returncode == -signal.SIGKILL
+    shards = tmp_path / ".out.partial" / "shards"
+    (shards / ".validation-00999.npy.partial").write_bytes(b"\x93NUMPY half a shard")
+    resumed = subprocess.run(_command(archive, output), capture_output=True, text=True)
+    assert resumed.returncode == 0, resumed.stderr
+    assert _tree(output) == reference
