@@ -169,6 +169,10 @@ class Checkpoints:
         recorded[step] = key
         write_json_atomic(self.work / _FILE, {"steps": recorded})
 
+    def forget(self) -> None:
+        """Remove the record, so no later run resumes from this work folder (done before deleting it)."""
+        (self.work / _FILE).unlink(missing_ok=True)
+
     def load(self, step: str, classes: Mapping[str, type]) -> dict[str, Any]:
         """The state saved by ``step``."""
         folder = self.folder / step

@@ -691,6 +691,9 @@ def _run_steps(definition: Definition, mapper: Mapper, progress: ProgressCallbac
         ledger = run.ledger_step()
         signatures = run.signatures_step()
         manifest = run.manifest(ledger, signatures)
+        # The record goes first: a run killed while the work folder is being deleted must start
+        # over, not resume from checkpoints whose files are half gone.
+        run.checkpoints.forget()
         shutil.rmtree(run.work)
         write_json_atomic(run.partial / MANIFEST_FILE, manifest)
         publish_folder(run.partial, run.output)

@@ -14,6 +14,7 @@ import subprocess
 import sys
 import time
 from pathlib import Path
+from typing import Any
 
 import pytest
 
@@ -148,4 +149,31 @@ def test_half_written_shards_of_a_killed_run_do_not_reach_the_output(
     (shards / ".validation-00999.npy.partial").write_bytes(b"\x93NUMPY half a shard")
     resumed = subprocess.run(_command(archive, output), capture_output=True, text=True)
     assert resumed.returncode == 0, resumed.stderr
+    assert _tree(output) == reference
+
+
+def test_a_run_killed_while_deleting_its_work_folder_starts_over(
+    archive: Path, reference: dict[str, bytes], tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Deleting the work folder is not atomic: stop it after its first file, as a kill would
+    # (the staged documents gone, say). The next run must not resume from the checkpoints.
+    import shutil as shutil_module
+
+    import corpusprep.pipeline as pipeline_module
+
+    output = tmp_path / "out"
+    definition = load_definition(DEMO).with_folders(input=archive, output=output)
+    real_rmtree = shutil_module.rmtree
+
+    def interrupted_rmtree(path: Any, *args: Any, **kwargs: Any) -> None:
+        if Path(path).name == ".work":
+            (Path(path) / "documents.arrow").unlink()
+            raise KeyboardInterrupt
+        real_rmtree(path, *args, **kwargs)
+
+    monkeypatch.setattr(pipeline_module.shutil, "rmtree", interrupted_rmtree)
+    with pytest.raises(KeyboardInterrupt):
+        run_pipeline(definition)
+    monkeypatch.setattr(pipeline_module.shutil, "rmtree", real_rmtree)
+    run_pipeline(definition)
     assert _tree(output) == reference
