@@ -124,10 +124,17 @@ def hex_pair(pair: np.ndarray) -> str:
 
 @dataclass(frozen=True, slots=True, kw_only=True)
 class StageTask:
-    """One first-pass task: a run of consecutive inputs and where to write their staged rows."""
+    """One first-pass task: a run of consecutive inputs and where to write their staged rows.
+
+    Either ``entries`` (the worker reads them) or ``batch`` (rows the driver read
+    from one large file, so that its batches spread over the workers); ``inputs``
+    are :class:`InputFile` entries the driver read along with ``batch``.
+    """
 
     index: int
-    entries: tuple[Entry, ...]
+    entries: tuple[Entry, ...] = ()
+    batch: pa.RecordBatch | None = None
+    inputs: tuple[InputFile, ...] = ()
     root_real: str
     read: ReadConfig
     clean: CleanConfig
@@ -184,12 +191,17 @@ def stage_inputs(task: StageTask) -> StagePart:
     permutations = rows = 0
     documents, signatures = task.documents_file, task.signatures_file
     temporary = [path.with_name(f".{path.name}.partial") for path in (documents, signatures)]
+    items: Iterator[pa.RecordBatch | InputFile] = (
+        read_entries(task.entries, task.read, task.root_real, batch_rows=task.batch_rows)
+        if task.entries
+        else iter([*([] if task.batch is None else [task.batch]), *task.inputs])
+    )
     with (
         pa.OSFile(str(temporary[0]), "wb") as sink,
         pa.ipc.new_file(sink, DOC_SCHEMA) as writer,
         open(temporary[1], "wb") as signature_sink,
     ):
-        for item in read_entries(task.entries, task.read, task.root_real, batch_rows=task.batch_rows):
+        for item in items:
             if isinstance(item, InputFile):
                 inputs.append(item)
                 continue

@@ -46,7 +46,7 @@ from corpusprep.near import find_clusters
 from corpusprep.pack import document_order, pack_split_mapped, smallest_dtype
 from corpusprep.pool import Mapper, local_engine
 from corpusprep.publish import check_output_folder, publish_folder
-from corpusprep.read import InputFile, input_entries
+from corpusprep.read import InputFile, input_entries, read_entries
 from corpusprep.schema import DOC_SCHEMA, EMPTY, EXACT_COPY, KEPT, NEAR_COPY, REJECTED, STATUSES
 from corpusprep.split import SPLITS, assign_splits, components
 from corpusprep.tokens import build_tokenizer, tokenizer_from_state, tokenizer_state
@@ -93,6 +93,9 @@ _BATCH_ROWS = 1024
 #: reading, cleaning and signing about this much, written by the worker to its own part file.
 _PART_BYTES = 4 << 20
 _PART_FILES = 1024
+#: A single input file larger than this is read by the driver and its batches are spread over
+#: the workers; smaller files are read by the workers themselves, a run of them per task.
+_DRIVER_READ_BYTES = 64 << 20
 _PARTS = "parts"
 _BATCH_TEXT_BYTES = 4 << 20
 
@@ -163,21 +166,39 @@ class _Run:
         root_real, entries = input_entries(self.input, definition.read)
         parts = self.work / _PARTS
         parts.mkdir(exist_ok=True)
-        tasks = [
-            StageTask(
-                index=index,
-                entries=group,
-                root_real=root_real,
-                read=definition.read,
-                clean=definition.clean,
-                exact=definition.exact,
-                near=definition.near,
-                folder=str(parts),
-                batch_rows=_BATCH_ROWS,
-                batch_text_bytes=_BATCH_TEXT_BYTES,
-            )
-            for index, group in enumerate(input_groups(entries))
-        ]
+        tasks: list[StageTask] = []  # filled while the map draws them; joined in this order after
+        stage = functools.partial(
+            StageTask,
+            root_real=root_real,
+            read=definition.read,
+            clean=definition.clean,
+            exact=definition.exact,
+            near=definition.near,
+            folder=str(parts),
+            batch_rows=_BATCH_ROWS,
+            batch_text_bytes=_BATCH_TEXT_BYTES,
+        )
+
+        def drawn() -> Iterator[StageTask]:
+            for group in input_groups(entries):
+                if len(group) == 1 and _entry_bytes(group[0]) > _DRIVER_READ_BYTES:
+                    # One large file: the driver reads it and its batches spread over the workers.
+                    pending: pa.RecordBatch | None = None
+                    carried: list[InputFile] = []
+                    for item in read_entries(group, definition.read, root_real, batch_rows=_BATCH_ROWS):
+                        if isinstance(item, InputFile):
+                            carried.append(item)
+                            continue
+                        if pending is not None:
+                            tasks.append(stage(index=len(tasks), batch=pending, inputs=tuple(carried)))
+                            carried = []
+                            yield tasks[-1]
+                        pending = item
+                    tasks.append(stage(index=len(tasks), batch=pending, inputs=tuple(carried)))
+                else:
+                    tasks.append(stage(index=len(tasks), entries=group))
+                yield tasks[-1]
+
         statuses: list[np.ndarray] = []
         text_hashes: list[np.ndarray] = []
         keys: list[np.ndarray] = []
@@ -187,7 +208,7 @@ class _Run:
         examples: list[str] = []
         self.has_signatures = False
         rows = 0
-        for part in self.mapper(stage_inputs, tasks):
+        for part in self.mapper(stage_inputs, drawn()):
             self.inputs.extend(part.inputs)
             statuses.append(part.status)
             text_hashes.append(part.text_hashes)
@@ -609,14 +630,21 @@ class _Run:
         }
 
 
+def _entry_bytes(entry: Entry) -> int:
+    try:
+        return os.stat(entry.path).st_size if entry.kind == "file" else 0
+    except OSError:
+        return 0  # the task reports the file as unreadable
+
+
 def input_groups(
     entries: list[Entry], *, part_bytes: int = 0, part_files: int = 0
 ) -> list[tuple[Entry, ...]]:
     """Cut the inputs into runs of consecutive entries of about ``part_bytes`` on disk (first-pass tasks).
 
     The cut depends only on the entries and their sizes, never on the engine or
-    the number of workers. A file larger than ``part_bytes`` is a task of its
-    own: one file is read by one worker.
+    the number of workers. A file larger than ``part_bytes`` is a group of its
+    own (the first pass has the driver read one larger than ``_DRIVER_READ_BYTES``).
     """
     part_bytes = part_bytes or _PART_BYTES
     part_files = part_files or _PART_FILES
@@ -624,10 +652,7 @@ def input_groups(
     current: list[Entry] = []
     size = 0
     for entry in entries:
-        try:
-            length = os.stat(entry.path).st_size if entry.kind == "file" else 0
-        except OSError:
-            length = 0  # the task reports the file as unreadable
+        length = _entry_bytes(entry)
         if current and (size + length > part_bytes or len(current) >= part_files):
             groups.append(tuple(current))
             current, size = [], 0

@@ -325,6 +325,7 @@ def test_global_steps_cut_into_many_tasks_give_the_local_bytes(
     from corpusprep.definition import parse_definition
 
     monkeypatch.setattr(pipeline_module, "_PART_BYTES", 4096)  # a few files per first-pass task
+    monkeypatch.setattr(pipeline_module, "_DRIVER_READ_BYTES", 4096)  # larger files: read by the driver
     for name, value in [
         ("EXACT_PARTITION_ROWS", 16),
         ("BAND_TASKS", 5),
@@ -344,13 +345,19 @@ def test_global_steps_cut_into_many_tasks_give_the_local_bytes(
         def counted_items() -> Iterator[Any]:
             for item in items:
                 counted[name] = counted.get(name, 0) + 1
+                if name == "stage_inputs":
+                    kind = (
+                        "stage_inputs: driver-read batch" if item.batch is not None else "stage_inputs: files"
+                    )
+                    counted[kind] = counted.get(kind, 0) + 1
                 yield item
 
         return inner(function, counted_items())
 
     remote = run_pipeline(definition.with_folders(input=archive, output=tmp_path / "dask"), mapper=counting)
     for name in (
-        "stage_inputs",
+        "stage_inputs: files",
+        "stage_inputs: driver-read batch",
         "_exact_partition",
         "_band_task",
         "_estimate_task",

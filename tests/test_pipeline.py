@@ -325,3 +325,20 @@ def test_document_starts_mark_every_document_beginning(demo_output: Path) -> Non
         covered = len(stream) - 1  # positions that are some window's input
         expected = [p for p in range(covered) if p == 0 or stream[p - 1] == eod]
         assert found == expected
+
+
+def test_large_files_read_by_the_driver_change_no_byte(
+    archive: Path, demo_output: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Every file counts as large: the driver reads each one and its batches become the tasks
+    # (the path a single multi-gigabyte file takes), in batches of seven rows.
+    import corpusprep.pipeline as pipeline_module
+
+    monkeypatch.setattr(pipeline_module, "_PART_BYTES", 1)
+    monkeypatch.setattr(pipeline_module, "_DRIVER_READ_BYTES", 0)
+    monkeypatch.setattr(pipeline_module, "_BATCH_ROWS", 7)
+    definition = load_definition(DEMO)
+    output = run_pipeline(
+        definition.with_folders(input=archive, output=tmp_path / "driver"), workers=2
+    ).output
+    assert _tree_bytes(output) == _tree_bytes(demo_output)
