@@ -35,7 +35,14 @@ import pyarrow as pa
 
 from corpusprep import __version__
 from corpusprep.barriers import MappedPairWork, SignatureStore, first_occurrences_mapped
-from corpusprep.batchwork import EncodeTask, StageTask, encode_staged, hex_pair, stage_inputs
+from corpusprep.batchwork import (
+    EncodeTask,
+    StageTask,
+    bounded_slices,
+    encode_staged,
+    hex_pair,
+    stage_inputs,
+)
 from corpusprep.checkpoint import Checkpoints, input_fingerprint, step_keys
 from corpusprep.definition import Definition
 from corpusprep.errors import InputError, IntegrityError, TooManyRejectedError
@@ -189,11 +196,12 @@ class _Run:
                         if isinstance(item, InputFile):
                             carried.append(item)
                             continue
-                        if pending is not None:
-                            tasks.append(stage(index=len(tasks), batch=pending, inputs=tuple(carried)))
-                            carried = []
-                            yield tasks[-1]
-                        pending = item
+                        for piece in bounded_slices(item, _BATCH_TEXT_BYTES):  # tasks of a few MiB
+                            if pending is not None:
+                                tasks.append(stage(index=len(tasks), batch=pending, inputs=tuple(carried)))
+                                carried = []
+                                yield tasks[-1]
+                            pending = piece
                     tasks.append(stage(index=len(tasks), batch=pending, inputs=tuple(carried)))
                 else:
                     tasks.append(stage(index=len(tasks), entries=group))
