@@ -52,11 +52,14 @@ hash functions of MMDS Example 3.8.
 from __future__ import annotations
 
 import dataclasses
+import types
 from collections.abc import Iterable, Sequence
 from typing import Protocol
 
 import numpy as np
 import xxhash
+
+from corpusprep.shingles import compiled_kernels
 
 __all__ = [
     "EMPTY_VALUE",
@@ -66,6 +69,7 @@ __all__ = [
     "fold_key",
     "pair_similarity",
     "signature_matrix",
+    "signature_matrix_numpy",
     "signature_scalar",
     "signature_similarity",
 ]
@@ -176,13 +180,30 @@ def _block_minima(values: np.ndarray, piece_starts: np.ndarray) -> np.ndarray:
 def signature_matrix(key_sets: Sequence[np.ndarray], functions: HashFunctions) -> np.ndarray:
     """Signatures of many key sets at once: shape (len(key_sets), permutations), ``uint32``.
 
+    Keys may repeat (a multiset has the minima of its set). An empty set gets a row
+    of :data:`EMPTY_VALUE`. For :class:`MultiplyShift`, once the process has done
+    enough work to load them (:func:`corpusprep.shingles.compiled_kernels`), the
+    compiled kernel computes the rows in one fused pass per key; otherwise, and for
+    any other family, :func:`signature_matrix_numpy`. Both give the same values.
+    """
+    if type(functions) is MultiplyShift:
+        total = sum(np.asarray(keys).size for keys in key_sets)
+        # About 8 bytes of text per key, the unit compiled_kernels counts in.
+        kernels = compiled_kernels(8 * total)
+        if kernels is not None:
+            return _signatures_compiled(kernels, key_sets, functions)
+    return signature_matrix_numpy(key_sets, functions)
+
+
+def signature_matrix_numpy(key_sets: Sequence[np.ndarray], functions: HashFunctions) -> np.ndarray:
+    """:func:`signature_matrix` by NumPy alone, for any family (the reference of the compiled path).
+
     The keys of all sets are concatenated and processed in blocks of about 2^18
     cells; values are laid out (permutations, keys) so that minima run along
     contiguous memory: one ``np.minimum.reduceat`` over a block of many short
     sets, one SIMD reduction per set for a block of few long ones. The minimum of
     each set's piece of a block is merged into the set's row, so the work array
-    stays small however large the documents are. Keys may repeat (a multiset has
-    the minima of its set). An empty set gets a row of :data:`EMPTY_VALUE`.
+    stays small however large the documents are.
     """
     permutations = functions.permutations
     count = len(key_sets)
@@ -207,6 +228,25 @@ def signature_matrix(key_sets: Sequence[np.ndarray], functions: HashFunctions) -
             minima[members] = np.minimum(minima[members], pieces.T)
     shifted = minima >> np.array(functions.shift, dtype=dtype)
     signatures: np.ndarray = np.minimum(shifted, np.array(_CAP, dtype=dtype)).astype(np.uint32)
+    signatures[sizes == 0] = EMPTY_VALUE
+    return signatures
+
+
+def _signatures_compiled(
+    kernels: types.ModuleType, key_sets: Sequence[np.ndarray], functions: MultiplyShift
+) -> np.ndarray:
+    """:func:`signature_matrix_numpy` for :class:`MultiplyShift` by one fused compiled loop."""
+    sizes = np.array([np.asarray(keys).size for keys in key_sets], dtype=np.int64)
+    offsets = np.zeros(len(key_sets) + 1, dtype=np.int64)
+    np.cumsum(sizes, out=offsets[1:])
+    if offsets[-1] > 0:
+        keys_all = np.concatenate([np.asarray(keys, dtype=np.uint64).ravel() for keys in key_sets])
+    else:
+        keys_all = np.empty(0, dtype=np.uint64)
+    signatures: np.ndarray = kernels.signatures(
+        keys_all, offsets, functions.multipliers, functions.increments
+    )
+    np.minimum(signatures, np.uint32(_CAP), out=signatures)
     signatures[sizes == 0] = EMPTY_VALUE
     return signatures
 

@@ -56,6 +56,16 @@ definition (``str.translate`` with a table of every ``P*`` code point), and
 :func:`view_words` the fast path (``bytes.translate`` for ASCII text, a NumPy
 lookup over code points otherwise), tested equal on real text and on every
 code point.
+
+Compiled path
+-------------
+:func:`shingle_key_stream` (and :func:`shingle_keys`) run the numba loops of
+:mod:`corpusprep.shingle_kernels` (view, XXH3-64 of the words, rolling keys, in
+one pass each) once the process has shingled 8 Mi code points in total: below
+that, importing numba (about 0.3-0.6 s) would cost more than it saves.
+:func:`shingle_key_stream_numpy` is the NumPy path, kept as the reference; the
+tests hold the two equal on arbitrary Unicode text. :func:`set_compiled_after`
+moves the threshold (0: at once; None: never).
 """
 
 from __future__ import annotations
@@ -78,12 +88,15 @@ __all__ = [
     "NO_SPACE_SCRIPTS",
     "UNITS",
     "WORD",
+    "compiled_kernels",
     "exact_jaccard",
     "is_mostly_unspaced",
     "normalize_view",
     "punctuation_table",
     "resolve_unit",
+    "set_compiled_after",
     "shingle_key_stream",
+    "shingle_key_stream_numpy",
     "shingle_keys",
     "shingle_keys_scalar",
     "shingle_strings",
@@ -312,7 +325,22 @@ def shingle_key_stream(
     """Every shingle's key in order of occurrence, repeats included, and the unit used.
 
     An empty view gives an empty array. ``np.unique`` of the keys is :func:`shingle_keys`.
+    Runs the compiled kernels once the process has shingled enough text (see
+    :func:`compiled_kernels`), else :func:`shingle_key_stream_numpy`; both give the same keys.
     """
+    _check_ngram(ngram)
+    if unit not in UNITS:
+        raise ValueError(f"unit = {unit!r}: must be one of {', '.join(UNITS)}")
+    kernels = compiled_kernels(len(text))
+    if kernels is None:
+        return shingle_key_stream_numpy(text, unit=unit, ngram=ngram, seed=seed)
+    return _key_stream_compiled(kernels, text, unit, ngram, seed)
+
+
+def shingle_key_stream_numpy(
+    text: str, *, unit: str = WORD, ngram: int = 5, seed: int = 0
+) -> tuple[np.ndarray, str]:
+    """:func:`shingle_key_stream` by Python and NumPy alone (the reference of the compiled path)."""
     _check_ngram(ngram)
     if unit not in UNITS:
         raise ValueError(f"unit = {unit!r}: must be one of {', '.join(UNITS)}")
@@ -332,6 +360,83 @@ def shingle_key_stream(
     else:
         values = np.frombuffer(view.encode("utf-32-le"), dtype="<u4").astype(np.uint64)
     return _window_keys(values, used, ngram, seed), used
+
+
+# Text (code points) a process shingles by NumPy before it loads the compiled kernels: importing
+# numba and loading the cached kernels costs about 0.3-0.6 s, which pays off only on larger runs.
+_compiled_after: int | None = 8 << 20
+_text_seen = 0
+_kernels: types.ModuleType | None = None
+
+
+def compiled_kernels(amount: int = 0) -> types.ModuleType | None:
+    """:mod:`corpusprep.shingle_kernels`, or None while it is not worth importing.
+
+    ``amount`` is the size of the work about to be done, in code points of text (or the
+    equivalent); the kernels are imported once the process has asked for at least
+    :func:`set_compiled_after` of it in total, and used from then on.
+    """
+    global _text_seen, _kernels
+    if _compiled_after is None:
+        return None
+    if _kernels is None:
+        _text_seen += amount
+        if _text_seen < _compiled_after:
+            return None
+        from corpusprep import shingle_kernels
+
+        _kernels = shingle_kernels
+    return _kernels
+
+
+def set_compiled_after(amount: int | None) -> int | None:
+    """Set how much work a process does by NumPy before it loads the kernels: 0 loads them at
+    once, None never uses them. Return the previous setting. The results are the same either way."""
+    global _compiled_after
+    previous, _compiled_after = _compiled_after, amount
+    return previous
+
+
+@functools.cache
+def _range_bounds() -> tuple[np.ndarray, np.ndarray]:
+    firsts = np.array([first for _name, first, _last in NO_SPACE_SCRIPTS], dtype=np.uint32)
+    lasts = np.array([last for _name, _first, last in NO_SPACE_SCRIPTS], dtype=np.uint32)
+    return firsts, lasts
+
+
+def _key_stream_compiled(
+    kernels: types.ModuleType, text: str, unit: str, ngram: int, seed: int
+) -> tuple[np.ndarray, str]:
+    """:func:`shingle_key_stream_numpy` by the kernels of :mod:`corpusprep.shingle_kernels`."""
+    view: np.ndarray
+    if text.isascii():
+        # The bytes of the view with separator runs of any length (word_values skips them).
+        view = np.frombuffer(text.encode("ascii").translate(_ascii_table()), dtype=np.uint8)
+        used = WORD if unit == AUTO else unit  # ASCII is never mostly unspaced
+        if used == CHAR:
+            view = kernels.view_points(view, _separator_table())
+    else:
+        points = np.frombuffer(text.casefold().encode("utf-32-le"), dtype="<u4")
+        view = kernels.view_points(points, _separator_table())
+        used = unit
+        if unit == AUTO:
+            total, inside = kernels.count_unspaced(view, *_range_bounds())
+            used = CHAR if 2 * inside > total else WORD
+    if used == WORD:
+        values, long_words = kernels.word_values(view, np.uint64(seed), kernels.SECRET)
+        for number, first, end in long_words.tolist():
+            piece = view[first:end]
+            word = (
+                piece.tobytes() if piece.dtype == np.uint8 else piece.tobytes().decode("utf-32-le").encode()
+            )
+            values[number] = xxhash.xxh3_64_intdigest(word, seed=seed)
+    else:
+        values = view.astype(np.uint64)
+    if values.size == 0:
+        return np.empty(0, dtype=np.uint64), WORD if unit == AUTO else unit
+    width = min(ngram, values.size)
+    keys: np.ndarray = kernels.window_keys(values, width, np.uint64(_start_key(used, width, seed)))
+    return keys, used
 
 
 def shingle_keys(text: str, *, unit: str = WORD, ngram: int = 5, seed: int = 0) -> np.ndarray:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import itertools
 import math
+from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -12,7 +13,7 @@ import xxhash
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from corpusprep import minhash
+from corpusprep import minhash, shingles
 from corpusprep.minhash import (
     EMPTY_VALUE,
     MultiplyShift,
@@ -27,6 +28,14 @@ from corpusprep.shingles import exact_jaccard, shingle_keys, shingle_strings
 
 LICENCES = Path(__file__).resolve().parent.parent / "fixtures" / "licences"
 LICENCE_NAMES = ("GPL-2", "GPL-3", "LGPL-2.1", "LGPL-3", "Apache-2.0", "BSD")
+
+
+@pytest.fixture(autouse=True, params=["numpy", "compiled"])
+def kernel_path(request: pytest.FixtureRequest) -> Iterator[str]:
+    """Every test runs twice: by NumPy alone, and by the compiled kernels from the first call."""
+    previous = shingles.set_compiled_after(None if request.param == "numpy" else 0)
+    yield request.param
+    shingles.set_compiled_after(previous)
 
 
 def licence(name: str) -> str:

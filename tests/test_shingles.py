@@ -5,6 +5,7 @@ from __future__ import annotations
 import itertools
 import sys
 import unicodedata
+from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -34,6 +35,14 @@ LICENCES = Path(__file__).resolve().parent.parent / "fixtures" / "licences"
 LICENCE_NAMES = ("GPL-2", "GPL-3", "LGPL-2.1", "LGPL-3", "Apache-2.0", "BSD")
 PYTHON_DOCS = Path("/usr/share/doc/python3.11-doc/html/_sources")
 MASK64 = (1 << 64) - 1
+
+
+@pytest.fixture(autouse=True, params=["numpy", "compiled"])
+def kernel_path(request: pytest.FixtureRequest) -> Iterator[str]:
+    """Every test runs twice: by NumPy alone, and by the compiled kernels from the first call."""
+    previous = shingles.set_compiled_after(None if request.param == "numpy" else 0)
+    yield request.param
+    shingles.set_compiled_after(previous)
 
 
 def splitmix64_finaliser(value: int) -> int:
