@@ -29,9 +29,12 @@ import numba as nb
 import numpy as np
 
 __all__ = [
+    "EXPANDS",
     "LONGEST_WORD",
     "SECRET",
+    "byte_word_values",
     "count_unspaced",
+    "folded_view",
     "signatures",
     "view_points",
     "window_keys",
@@ -241,6 +244,42 @@ def view_points(points: np.ndarray, separators: np.ndarray) -> np.ndarray:
     return out[:size]
 
 
+#: Mark of a code point whose casefolding is more than one code point (see :func:`folded_view`).
+EXPANDS = np.uint32(0x80000000)
+
+
+@_jit
+def folded_view(
+    points: np.ndarray, fold: np.ndarray, expansions: np.ndarray, separators: np.ndarray
+) -> np.ndarray:
+    """:func:`view_points` of the casefolded ``points``, casefolding code point by code point.
+
+    ``fold[c]`` is the one code point ``c`` casefolds to, or :data:`EXPANDS` ORed with a row of
+    ``expansions``: (count, first, second, third) code points. ``str.casefold`` maps each code
+    point on its own (full case folding, no context), so this is the view of the casefolded text.
+    """
+    out = np.empty(3 * points.size, dtype=np.uint32)
+    size = 0
+    pending = False
+    for i in range(points.size):
+        folded = fold[points[i]]
+        expands = (folded & EXPANDS) != 0
+        row = np.int64(folded ^ EXPANDS) if expands else np.int64(0)
+        count = np.int64(expansions[row, 0]) if expands else np.int64(1)
+        for k in range(count):
+            point = expansions[row, k + 1] if expands else folded
+            if separators[point]:
+                pending = size > 0
+                continue
+            if pending:
+                out[size] = 0x20
+                size += 1
+                pending = False
+            out[size] = point
+            size += 1
+    return out[:size]
+
+
 @_jit
 def count_unspaced(view: np.ndarray, firsts: np.ndarray, lasts: np.ndarray) -> tuple[int, int]:
     """Count of the view's non-space code points, and of those inside one of the ranges."""
@@ -310,6 +349,34 @@ def word_values(view: np.ndarray, seed: np.uint64, secret: np.ndarray) -> tuple[
             i += 1
         if written <= LONGEST_WORD:
             values[count] = xxh3_64(scratch, 0, written, seed, secret)
+        else:
+            values[count] = 0
+            long_words[longs, 0] = count
+            long_words[longs, 1] = first
+            long_words[longs, 2] = i
+            longs += 1
+        count += 1
+    return values[:count], long_words[:longs]
+
+
+@_jit
+def byte_word_values(view: np.ndarray, seed: np.uint64, secret: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`word_values` of a view in bytes (``uint8``), each word hashed where it lies."""
+    size = view.size
+    values = np.empty(size // 2 + 1, dtype=np.uint64)
+    long_words = np.empty((size // (LONGEST_WORD + 1) + 1, 3), dtype=np.int64)
+    longs = 0
+    count = 0
+    i = 0
+    while i < size:
+        if view[i] == 0x20:
+            i += 1
+            continue
+        first = i
+        while i < size and view[i] != 0x20:
+            i += 1
+        if i - first <= LONGEST_WORD:
+            values[count] = xxh3_64(view, first, i - first, seed, secret)
         else:
             values[count] = 0
             long_words[longs, 0] = count

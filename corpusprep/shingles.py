@@ -90,6 +90,7 @@ __all__ = [
     "WORD",
     "compiled_kernels",
     "exact_jaccard",
+    "exact_jaccard_sorting",
     "is_mostly_unspaced",
     "normalize_view",
     "punctuation_table",
@@ -398,6 +399,43 @@ def set_compiled_after(amount: int | None) -> int | None:
 
 
 @functools.cache
+def _fold_tables(expands: int) -> tuple[np.ndarray, np.ndarray]:
+    """:meth:`str.casefold` as tables over all code points, for ``shingle_kernels.folded_view``.
+
+    ``fold[c]`` is the code point ``c`` casefolds to, or ``expands | r`` when it casefolds to
+    several: row r of ``expansions`` is (count, code points..., 0 padding). Built 256 code points
+    at a time (one ``casefold`` call each; a block that changes length is done point by point).
+    """
+    limit = sys.maxunicode + 1
+    points = np.arange(limit, dtype="<u4")
+    points[0xD800:0xE000] = 0x20  # surrogates cannot be decoded; they map to themselves below
+    every = points.tobytes().decode("utf-32-le")
+    fold = np.empty(limit, dtype=np.uint32)
+    rows: list[list[int]] = []
+    block = 256
+    for begin in range(0, limit, block):
+        folded = every[begin : begin + block].casefold()
+        if len(folded) == block:
+            fold[begin : begin + block] = np.frombuffer(folded.encode("utf-32-le"), dtype="<u4")
+            continue
+        for code in range(begin, begin + block):
+            pieces = [ord(piece) for piece in chr(code).casefold()]
+            if len(pieces) == 1:
+                fold[code] = pieces[0]
+            else:
+                fold[code] = expands | len(rows)
+                rows.append([len(pieces), *pieces])
+    fold[0xD800:0xE000] = np.arange(0xD800, 0xE000, dtype=np.uint32)
+    width = 1 + max((len(row) - 1 for row in rows), default=1)
+    expansions = np.zeros((max(len(rows), 1), width), dtype=np.uint32)
+    for number, row in enumerate(rows):
+        expansions[number, : len(row)] = row
+    fold.flags.writeable = False
+    expansions.flags.writeable = False
+    return fold, expansions
+
+
+@functools.cache
 def _range_bounds() -> tuple[np.ndarray, np.ndarray]:
     firsts = np.array([first for _name, first, _last in NO_SPACE_SCRIPTS], dtype=np.uint32)
     lasts = np.array([last for _name, _first, last in NO_SPACE_SCRIPTS], dtype=np.uint32)
@@ -416,14 +454,15 @@ def _key_stream_compiled(
         if used == CHAR:
             view = kernels.view_points(view, _separator_table())
     else:
-        points = np.frombuffer(text.casefold().encode("utf-32-le"), dtype="<u4")
-        view = kernels.view_points(points, _separator_table())
+        points = np.frombuffer(text.encode("utf-32-le"), dtype="<u4")
+        view = kernels.folded_view(points, *_fold_tables(kernels.EXPANDS), _separator_table())
         used = unit
         if unit == AUTO:
             total, inside = kernels.count_unspaced(view, *_range_bounds())
             used = CHAR if 2 * inside > total else WORD
     if used == WORD:
-        values, long_words = kernels.word_values(view, np.uint64(seed), kernels.SECRET)
+        hash_words = kernels.byte_word_values if view.dtype == np.uint8 else kernels.word_values
+        values, long_words = hash_words(view, np.uint64(seed), kernels.SECRET)
         for number, first, end in long_words.tolist():
             piece = view[first:end]
             word = (
@@ -474,10 +513,41 @@ def exact_jaccard(first: np.ndarray, second: np.ndarray) -> float:
 
     Inputs may hold repeats and be in any order (they are treated as sets).
     Two empty sets give 0.0: an empty document resembles nothing.
+    ``uint64`` inputs that are already sorted and distinct (what :func:`shingle_keys`
+    returns) are used as they are, and the intersection is counted by a binary search
+    of the smaller set in the larger (:func:`exact_jaccard_sorting` is the same count by
+    one sort of both sets, the reference).
 
     >>> exact_jaccard(np.array([1, 2, 3], dtype=np.uint64), np.array([2, 3, 4, 5], dtype=np.uint64))
     0.4
     """
+    left = np.asarray(first)
+    right = np.asarray(second)
+    if left.dtype != np.uint64 or right.dtype != np.uint64 or left.ndim != 1 or right.ndim != 1:
+        return exact_jaccard_sorting(left, right)
+    left = _as_set(left)
+    right = _as_set(right)
+    if left.size == 0 and right.size == 0:
+        return 0.0
+    if left.size > right.size:
+        left, right = right, left
+    common = 0
+    if left.size:
+        at = np.searchsorted(right, left)
+        np.minimum(at, right.size - 1, out=at)
+        common = int(np.count_nonzero(right[at] == left))
+    return common / (left.size + right.size - common)
+
+
+def _as_set(keys: np.ndarray) -> np.ndarray:
+    """``keys`` itself when it is ascending and distinct, else :func:`sorted_distinct` of it."""
+    if keys.size < 2 or bool(np.all(keys[1:] > keys[:-1])):
+        return keys
+    return sorted_distinct(keys)
+
+
+def exact_jaccard_sorting(first: np.ndarray, second: np.ndarray) -> float:
+    """:func:`exact_jaccard` by sorting both sets together and counting adjacent equal keys."""
     left = sorted_distinct(first)
     right = sorted_distinct(second)
     if left.size == 0 and right.size == 0:

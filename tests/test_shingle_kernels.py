@@ -22,6 +22,8 @@ from corpusprep.shingles import (
     CHAR,
     UNITS,
     WORD,
+    exact_jaccard,
+    exact_jaccard_sorting,
     normalize_view,
     shingle_key_stream,
     shingle_key_stream_numpy,
@@ -148,16 +150,33 @@ def test_auto_picks_the_same_unit_as_the_reference() -> None:
 
 
 def test_every_code_point_gives_the_readable_view() -> None:
-    # The compiled view equals normalize_view (str.casefold + the P* table) on every code point.
+    # The compiled view (casefolding by table, or after str.casefold) equals normalize_view
+    # (str.casefold + the P* table) on every code point, each between two words.
     separators = shingles._separator_table()
+    fold, expansions = shingles._fold_tables(kernels.EXPANDS)
     for begin in range(0, sys.maxunicode + 1, 0x8000):
-        points = [
-            p for p in range(begin, min(begin + 0x8000, sys.maxunicode + 1)) if not 0xD800 <= p <= 0xDFFF
-        ]
+        end = min(begin + 0x8000, sys.maxunicode + 1)
+        points = [p for p in range(begin, end) if not 0xD800 <= p <= 0xDFFF]  # no lone surrogates
         text = " x ".join(chr(p) for p in points)
+        expected = normalize_view(text)
+        raw = np.frombuffer(text.encode("utf-32-le"), dtype="<u4")
+        view = kernels.folded_view(raw, fold, expansions, separators)
+        assert view.tobytes().decode("utf-32-le") == expected, hex(begin)
         folded = np.frombuffer(text.casefold().encode("utf-32-le"), dtype="<u4")
         view = kernels.view_points(folded, separators)
-        assert view.tobytes().decode("utf-32-le") == normalize_view(text), hex(begin)
+        assert view.tobytes().decode("utf-32-le") == expected, hex(begin)
+
+
+def test_fold_tables_are_str_casefold_on_every_code_point() -> None:
+    fold, expansions = shingles._fold_tables(kernels.EXPANDS)
+    for code in range(sys.maxunicode + 1):
+        value = int(fold[code])
+        if value & kernels.EXPANDS:
+            row = expansions[value ^ kernels.EXPANDS]
+            got = "".join(map(chr, row[1 : 1 + row[0]]))
+        else:
+            got = chr(value)
+        assert got == chr(code).casefold(), hex(code)
 
 
 @pytest.mark.parametrize("name", ["GPL-3", "Apache-2.0", "BSD"])
@@ -175,6 +194,27 @@ def test_no_path_refuses_what_the_other_accepts() -> None:
         shingle_key_stream("a b", ngram=0)
     with pytest.raises(ValueError, match="unit"):
         shingle_key_stream("a b", unit="letters")
+
+
+# --- exact Jaccard: binary search == one sort == Python sets ---------------------------------
+
+
+@settings(max_examples=300, deadline=None)
+@given(
+    st.lists(st.integers(0, 40) | st.integers(0, 2**64 - 1), max_size=60),
+    st.lists(st.integers(0, 40) | st.integers(0, 2**64 - 1), max_size=60),
+    st.booleans(),
+)
+def test_exact_jaccard_equals_sets_and_the_sorting_count(
+    first: list[int], second: list[int], as_sets: bool
+) -> None:
+    left = np.array(sorted(set(first)) if as_sets else first, dtype=np.uint64)
+    right = np.array(sorted(set(second)) if as_sets else second, dtype=np.uint64)
+    got = exact_jaccard(left, right)
+    assert got == exact_jaccard_sorting(left, right)
+    # The definition on Python sets (Broder 1997, resemblance r(A, B) = |A ∩ B| / |A ∪ B|).
+    union = set(first) | set(second)
+    assert got == (len(set(first) & set(second)) / len(union) if union else 0.0)
 
 
 # --- signatures: compiled == NumPy == exact integers ------------------------------------------
