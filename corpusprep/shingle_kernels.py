@@ -34,6 +34,7 @@ __all__ = [
     "SECRET",
     "byte_word_values",
     "count_unspaced",
+    "folded_utf8",
     "folded_view",
     "signatures",
     "view_points",
@@ -244,6 +245,7 @@ def view_points(points: np.ndarray, separators: np.ndarray) -> np.ndarray:
     return out[:size]
 
 
+_SLACK = 64
 #: Mark of a code point whose casefolding is more than one code point (see :func:`folded_view`).
 EXPANDS = np.uint32(0x80000000)
 
@@ -258,14 +260,40 @@ def folded_view(
     ``expansions``: (count, first, second, third) code points. ``str.casefold`` maps each code
     point on its own (full case folding, no context), so this is the view of the casefolded text.
     """
-    out = np.empty(3 * points.size, dtype=np.uint32)
+    out = np.empty(points.size + _SLACK, dtype=np.uint32)
+    size = _fold_into(points, fold, expansions, separators, out, _SLACK)
+    if size < 0:  # casefolding lengthened the text by more than the slack: room for the worst case
+        out = np.empty(3 * points.size, dtype=np.uint32)
+        size = _fold_into(points, fold, expansions, separators, out, -1)
+    return out[:size]
+
+
+@_inline
+def _fold_into(
+    points: np.ndarray,
+    fold: np.ndarray,
+    expansions: np.ndarray,
+    separators: np.ndarray,
+    out: np.ndarray,
+    slack: int,
+) -> int:
+    """Write the folded view into ``out``; -1 once the expansions pass ``slack`` extra points (-1: no limit).
+
+    At most one code point (a space and a point after a silent separator) is written per code
+    point read, plus the extra points of expansions: so ``points.size + slack`` is enough room.
+    """
     size = 0
+    extra = 0
     pending = False
     for i in range(points.size):
         folded = fold[points[i]]
         expands = (folded & EXPANDS) != 0
         row = np.int64(folded ^ EXPANDS) if expands else np.int64(0)
         count = np.int64(expansions[row, 0]) if expands else np.int64(1)
+        if expands:
+            extra += int(count) - 1
+            if slack >= 0 and extra > slack:
+                return -1
         for k in range(count):
             point = expansions[row, k + 1] if expands else folded
             if separators[point]:
@@ -277,7 +305,71 @@ def folded_view(
                 pending = False
             out[size] = point
             size += 1
-    return out[:size]
+    return size
+
+
+@_jit
+def folded_utf8(
+    points: np.ndarray,
+    fold: np.ndarray,
+    expansions: np.ndarray,
+    separators: np.ndarray,
+    firsts: np.ndarray,
+    lasts: np.ndarray,
+) -> tuple[np.ndarray, int, int]:
+    """:func:`folded_view` in UTF-8 bytes, with :func:`count_unspaced` of it on the ranges given."""
+    out = np.empty(4 * (points.size + _SLACK), dtype=np.uint8)
+    size, total, inside = _fold_utf8_into(points, fold, expansions, separators, firsts, lasts, out, _SLACK)
+    if size < 0:
+        out = np.empty(4 * 3 * points.size, dtype=np.uint8)
+        size, total, inside = _fold_utf8_into(points, fold, expansions, separators, firsts, lasts, out, -1)
+    return out[:size], total, inside
+
+
+@_inline
+def _fold_utf8_into(
+    points: np.ndarray,
+    fold: np.ndarray,
+    expansions: np.ndarray,
+    separators: np.ndarray,
+    firsts: np.ndarray,
+    lasts: np.ndarray,
+    out: np.ndarray,
+    slack: int,
+) -> tuple[int, int, int]:
+    """:func:`_fold_into` in UTF-8 (at most 4 bytes per code point of room)."""
+    size = 0
+    extra = 0
+    pending = False
+    total = 0
+    inside = 0
+    lowest = firsts.min() if firsts.size else np.uint32(0xFFFFFFFF)
+    for i in range(points.size):
+        folded = fold[points[i]]
+        expands = (folded & EXPANDS) != 0
+        row = np.int64(folded ^ EXPANDS) if expands else np.int64(0)
+        count = np.int64(expansions[row, 0]) if expands else np.int64(1)
+        if expands:
+            extra += int(count) - 1
+            if slack >= 0 and extra > slack:
+                return -1, 0, 0
+        for k in range(count):
+            point = expansions[row, k + 1] if expands else folded
+            if separators[point]:
+                pending = size > 0
+                continue
+            if pending:
+                out[size] = 0x20
+                size += 1
+                pending = False
+            total += 1
+            if point >= lowest:
+                for r in range(firsts.size):
+                    if firsts[r] <= point <= lasts[r]:
+                        inside += 1
+                        break
+            size = _utf8(np.uint32(point), out, size)
+    return size, total, inside
 
 
 @_jit
@@ -389,17 +481,24 @@ def byte_word_values(view: np.ndarray, seed: np.uint64, secret: np.ndarray) -> t
 
 @_jit
 def window_keys(values: np.ndarray, width: int, start_key: np.uint64) -> np.ndarray:
-    """Key of each window of ``width`` consecutive values: h = start_key, then h = mix64(h ^ u) per value."""
+    """Key of each window of ``width`` consecutive values: h = start_key, then h = mix64(h ^ u) per value.
+
+    Windows are done 512 at a time, one unit offset after the other, so that the inner loop runs
+    over independent keys (vectorised where the machine has 64-bit vector multiplies).
+    """
     count = values.size - width + 1
     keys = np.empty(max(count, 0), dtype=np.uint64)
-    for start in range(count):
-        z = start_key
+    for begin in range(0, count, 512):
+        size = min(512, count - begin)
+        block = keys[begin : begin + size]
+        block[:] = start_key
         for offset in range(width):
-            z ^= values[start + offset]
-            z = (z ^ (z >> _S30)) * _M1
-            z = (z ^ (z >> _S27)) * _M2
-            z = z ^ (z >> _S31)
-        keys[start] = z
+            units = values[begin + offset : begin + offset + size]
+            for j in range(size):
+                z = block[j] ^ units[j]
+                z = (z ^ (z >> _S30)) * _M1
+                z = (z ^ (z >> _S27)) * _M2
+                block[j] = z ^ (z >> _S31)
     return keys
 
 

@@ -455,11 +455,15 @@ def _key_stream_compiled(
             view = kernels.view_points(view, _separator_table())
     else:
         points = np.frombuffer(text.encode("utf-32-le"), dtype="<u4")
-        view = kernels.folded_view(points, *_fold_tables(kernels.EXPANDS), _separator_table())
+        tables = (*_fold_tables(kernels.EXPANDS), _separator_table())
         used = unit
-        if unit == AUTO:
-            total, inside = kernels.count_unspaced(view, *_range_bounds())
-            used = CHAR if 2 * inside > total else WORD
+        if unit != CHAR:
+            # The view in UTF-8, where the words are hashed in place, and what "auto" decides by.
+            view, total, inside = kernels.folded_utf8(points, *tables, *_range_bounds())
+            if unit == AUTO:
+                used = CHAR if 2 * inside > total else WORD
+        if used == CHAR:
+            view = kernels.folded_view(points, *tables)
     if used == WORD:
         hash_words = kernels.byte_word_values if view.dtype == np.uint8 else kernels.word_values
         values, long_words = hash_words(view, np.uint64(seed), kernels.SECRET)

@@ -136,6 +136,14 @@ def test_words_around_the_longest_hashed_length(unit: str) -> None:
             assert_same_stream(text, unit, 2, 3)
 
 
+@pytest.mark.parametrize("unit", UNITS)
+def test_texts_that_casefolding_lengthens_a_lot(unit: str) -> None:
+    # "ß" casefolds to "ss", "ΐ" to three code points, "ﬃ" to "ffi" (Unicode CaseFolding.txt, status F):
+    # past the kernel's first guess of the room needed.
+    for text in ("ß" * 1000, "ΐ " * 500, "Straße ﬃ ΐ. " * 300, "ß" + "ΐ" * 70 + " 東京" * 3):
+        assert_same_stream(text, unit, 3, 1)
+
+
 @pytest.mark.parametrize("text", ["", " ", "...!?", " \t\n\u3000", "—«»", "a", "東"])
 @pytest.mark.parametrize("unit", UNITS)
 def test_empty_and_tiny_views(text: str, unit: str) -> None:
