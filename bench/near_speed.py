@@ -1,6 +1,6 @@
 """Speed and accuracy of near-duplicate detection, beside datasketch measured in the same run.
 
-Run: ``.venv/bin/python bench/near_speed.py [--pages N] [--reference-docs N]``.
+Run: ``.venv/bin/python bench/near_speed.py [--pages N] [--reference-docs N] [--path compiled|numpy]``.
 
 The corpus is Python 3.11 documentation sources (Debian package python3.11-doc),
 each page followed by perturbed copies with 0.5-8% of words edited by a seeded
@@ -11,6 +11,11 @@ the same shingle strings, already built, so its figures leave out shingling:
 hash, SHA-1 based), the same with an XXH32 ``hashfunc``, and ``update_batch``;
 then ``MinHashLSH(threshold, num_perm)`` insert + query. Accuracy of both is
 counted on pairs against brute-force exact Jaccard (near, non-identical pairs).
+
+corpusprep runs its compiled shingle and signature kernels (``--path compiled``, the default:
+loaded before timing, the load printed apart as ``kernel_load_seconds``, which a pipeline
+process pays once) or its NumPy path alone (``--path numpy``); the sample is also timed on the
+NumPy path, and ``compiled_speedup`` is NumPy time / compiled time on it, in the same run.
 """
 
 from __future__ import annotations
@@ -28,7 +33,7 @@ import pyarrow as pa
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from corpusprep import schema
+from corpusprep import schema, shingles
 from corpusprep.near import NearConfig, document_shingles, find_clusters, signature_batch
 from corpusprep.shingles import shingle_strings
 
@@ -183,6 +188,15 @@ def measure(texts: list[str], config: NearConfig, *, reference_docs: int = 200) 
         "documents_per_second": len(sample) / sample_timing["seconds"],
         **accuracy(sample_pairs, exact, config.threshold),
     }
+    previous = shingles.set_compiled_after(None)
+    numpy_timing, numpy_pairs = _ours(sample, config)
+    shingles.set_compiled_after(previous)
+    report["corpusprep_numpy_sample"] = {
+        **numpy_timing,
+        "documents_per_second": len(sample) / numpy_timing["seconds"],
+        "compiled_speedup": numpy_timing["seconds"] / sample_timing["seconds"],
+        "same_pairs": numpy_pairs == sample_pairs,
+    }
     strings = [
         [s.encode("utf-8") for s in sorted(set(shingle_strings(t, ngram=config.ngram)))] for t in sample
     ]
@@ -237,6 +251,8 @@ def main() -> None:
     parser.add_argument("--reference-docs", type=int, default=200, help="documents datasketch is timed on")
     parser.add_argument("--permutations", type=int, default=NearConfig().permutations)
     parser.add_argument("--verify", choices=("signature", "exact"), default="exact")
+    paths = ("compiled", "numpy")
+    parser.add_argument("--path", choices=paths, default="compiled", help="compiled kernels or NumPy alone")
     args = parser.parse_args()
     if not PYTHON_DOCS.is_dir():
         raise SystemExit(f"{PYTHON_DOCS} not found: install the Debian package python3.11-doc")
@@ -244,6 +260,14 @@ def main() -> None:
     pages = [p for p in pages if len(p) >= 2000]
     config = NearConfig(permutations=args.permutations, verify=args.verify)
     texts = perturbed_corpus(pages[: args.pages], args.copies, seed=0)
+    if args.path == "compiled":
+        start = time.perf_counter()
+        shingles.set_compiled_after(0)
+        _ours(["Warm-up: a rose is a rose is a rose.", "東京は日本の首都です", "Ça, c'est ça."], config)
+        loaded = time.perf_counter() - start
+        print(f"kernel_load_seconds: {loaded:.3g} (numba import, cached kernels, first calls)")
+    else:
+        shingles.set_compiled_after(None)
     _print(f"near_speed (permutations={config.permutations}, verify={config.verify})", measure(
         texts, config, reference_docs=args.reference_docs
     ))  # fmt: skip
