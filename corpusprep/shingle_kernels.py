@@ -6,11 +6,13 @@ The results are those of the NumPy paths of both modules, which stay the referen
 what the NumPy paths do in many:
 
 * :func:`view_points`: the view's code points (separators to one space, none at either
-  end) from the casefolded code points and the separator table;
-* :func:`word_values`: each word's XXH3-64 under the seed, from a view in bytes (ASCII)
-  or in code points (encoded to UTF-8 on the fly). XXH3-64 is written out here for
-  inputs up to 240 bytes (its short and medium paths, no secret derivation needed); a
-  longer word is listed for the caller to hash with the ``xxhash`` library;
+  end) from the casefolded code points and the separator table; :func:`folded_view` the
+  same from the code points before casefolding (:meth:`str.casefold` by table), and
+  :func:`folded_utf8` the same in UTF-8 bytes, counting the code points "auto" decides by;
+* :func:`byte_word_values`: each word's XXH3-64 under the seed, hashed where it lies in the
+  view's UTF-8 bytes. XXH3-64 is written out here for inputs up to 240 bytes (its short and
+  medium paths, no secret derivation needed); a longer word is listed for the caller to hash
+  with the ``xxhash`` library;
 * :func:`window_keys`: the rolling shingle keys h_j = mix64(h_{j-1} XOR u_j);
 * :func:`signatures`: per key set, the minimum of ``(a_i * fold(x) + b_i) mod 2^32``,
   one fused pass (multiply, add, minimum) per key over a signature row kept in cache.
@@ -33,13 +35,11 @@ __all__ = [
     "LONGEST_WORD",
     "SECRET",
     "byte_word_values",
-    "count_unspaced",
     "folded_utf8",
     "folded_view",
     "signatures",
     "view_points",
     "window_keys",
-    "word_values",
     "xxh3_64",
 ]
 
@@ -201,17 +201,10 @@ def xxh3_64(data: np.ndarray, start: int, length: int, seed: np.uint64, secret: 
         return _avalanche(size + _swap64(low) + high + _fold128(low, high))
     acc = size * _P64_1
     if length <= 128:
-        if length > 32:
-            if length > 64:
-                if length > 96:
-                    acc += _mix16(data, start + 48, secret, 96, seed)
-                    acc += _mix16(data, start + length - 64, secret, 112, seed)
-                acc += _mix16(data, start + 32, secret, 64, seed)
-                acc += _mix16(data, start + length - 48, secret, 80, seed)
-            acc += _mix16(data, start + 16, secret, 32, seed)
-            acc += _mix16(data, start + length - 32, secret, 48, seed)
-        acc += _mix16(data, start, secret, 0, seed)
-        acc += _mix16(data, start + length - 16, secret, 16, seed)
+        # xxhash.h adds the pairs from the innermost out; the sum modulo 2^64 is the same in any order.
+        for k in range((length - 1) // 32 + 1):
+            acc += _mix16(data, start + 16 * k, secret, 32 * k, seed)
+            acc += _mix16(data, start + length - 16 * (k + 1), secret, 32 * k + 16, seed)
         return _avalanche(acc)
     for k in range(8):
         acc += _mix16(data, start + 16 * k, secret, 16 * k, seed)
@@ -317,7 +310,8 @@ def folded_utf8(
     firsts: np.ndarray,
     lasts: np.ndarray,
 ) -> tuple[np.ndarray, int, int]:
-    """:func:`folded_view` in UTF-8 bytes, with :func:`count_unspaced` of it on the ranges given."""
+    """:func:`folded_view` in UTF-8 bytes, with the count of its non-space code points and of
+    those inside one of the ranges ``firsts[r]..lasts[r]``."""
     out = np.empty(4 * (points.size + _SLACK), dtype=np.uint8)
     size, total, inside = _fold_utf8_into(points, fold, expansions, separators, firsts, lasts, out, _SLACK)
     if size < 0:
@@ -372,23 +366,6 @@ def _fold_utf8_into(
     return size, total, inside
 
 
-@_jit
-def count_unspaced(view: np.ndarray, firsts: np.ndarray, lasts: np.ndarray) -> tuple[int, int]:
-    """Count of the view's non-space code points, and of those inside one of the ranges."""
-    total = 0
-    inside = 0
-    for i in range(view.size):
-        point = view[i]
-        if point == 0x20:
-            continue
-        total += 1
-        for r in range(firsts.size):
-            if firsts[r] <= point <= lasts[r]:
-                inside += 1
-                break
-    return total, inside
-
-
 @_inline
 def _utf8(point: np.uint32, out: np.ndarray, at: int) -> int:
     """Write the UTF-8 bytes of one code point at ``out[at:]``; return the new end."""
@@ -412,48 +389,14 @@ def _utf8(point: np.uint32, out: np.ndarray, at: int) -> int:
 
 
 @_jit
-def word_values(view: np.ndarray, seed: np.uint64, secret: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """XXH3-64 under ``seed`` of the UTF-8 bytes of each space-separated word of ``view``.
-
-    ``view`` holds bytes (``uint8``, ASCII: each byte is its code point) or code points
-    (``uint32``); any run of 0x20 separates words and empty pieces are dropped, as
-    ``bytes.split`` does on a text whose only whitespace is the space. Returns the values and,
-    as rows ``(word number, first unit, end unit)``, the words longer than
-    :data:`LONGEST_WORD` bytes in UTF-8, whose value is left as 0 for the caller to fill.
-    """
-    size = view.size
-    values = np.empty(size // 2 + 1, dtype=np.uint64)
-    # A word over LONGEST_WORD bytes has at least (LONGEST_WORD + 1) / 4 units.
-    long_words = np.empty((size // ((LONGEST_WORD + 1) // 4) + 1, 3), dtype=np.int64)
-    longs = 0
-    scratch = np.empty(4 * (LONGEST_WORD + 1), dtype=np.uint8)
-    count = 0
-    i = 0
-    while i < size:
-        if view[i] == 0x20:
-            i += 1
-            continue
-        first = i
-        written = 0
-        while i < size and view[i] != 0x20:
-            if written <= LONGEST_WORD:
-                written = _utf8(np.uint32(view[i]), scratch, written)
-            i += 1
-        if written <= LONGEST_WORD:
-            values[count] = xxh3_64(scratch, 0, written, seed, secret)
-        else:
-            values[count] = 0
-            long_words[longs, 0] = count
-            long_words[longs, 1] = first
-            long_words[longs, 2] = i
-            longs += 1
-        count += 1
-    return values[:count], long_words[:longs]
-
-
-@_jit
 def byte_word_values(view: np.ndarray, seed: np.uint64, secret: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """:func:`word_values` of a view in bytes (``uint8``), each word hashed where it lies."""
+    """XXH3-64 under ``seed`` of each space-separated word of a view in UTF-8 bytes (``uint8``).
+
+    Any run of 0x20 separates words and empty pieces are dropped, as ``bytes.split`` does on a
+    text whose only whitespace is the space. Returns the values and, as rows ``(word number,
+    first byte, end byte)``, the words longer than :data:`LONGEST_WORD` bytes, whose value is
+    left as 0 for the caller to fill.
+    """
     size = view.size
     values = np.empty(size // 2 + 1, dtype=np.uint64)
     long_words = np.empty((size // (LONGEST_WORD + 1) + 1, 3), dtype=np.int64)

@@ -448,7 +448,7 @@ def _key_stream_compiled(
     """:func:`shingle_key_stream_numpy` by the kernels of :mod:`corpusprep.shingle_kernels`."""
     view: np.ndarray
     if text.isascii():
-        # The bytes of the view with separator runs of any length (word_values skips them).
+        # The bytes of the view with separator runs of any length (byte_word_values skips them).
         view = np.frombuffer(text.encode("ascii").translate(_ascii_table()), dtype=np.uint8)
         used = WORD if unit == AUTO else unit  # ASCII is never mostly unspaced
         if used == CHAR:
@@ -465,14 +465,9 @@ def _key_stream_compiled(
         if used == CHAR:
             view = kernels.folded_view(points, *tables)
     if used == WORD:
-        hash_words = kernels.byte_word_values if view.dtype == np.uint8 else kernels.word_values
-        values, long_words = hash_words(view, np.uint64(seed), kernels.SECRET)
+        values, long_words = kernels.byte_word_values(view, np.uint64(seed), kernels.SECRET)
         for number, first, end in long_words.tolist():
-            piece = view[first:end]
-            word = (
-                piece.tobytes() if piece.dtype == np.uint8 else piece.tobytes().decode("utf-32-le").encode()
-            )
-            values[number] = xxhash.xxh3_64_intdigest(word, seed=seed)
+            values[number] = xxhash.xxh3_64_intdigest(view[first:end].tobytes(), seed=seed)
     else:
         values = view.astype(np.uint64)
     if values.size == 0:
