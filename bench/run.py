@@ -155,8 +155,8 @@ def main(argv: list[str] | None = None) -> int:
         "tokens": ["tokens_speed.py"],
         "reader": ["reader_speed.py"],
         "audit": ["audit_speed.py", str(base_output if base_output.is_dir() else corpus)],
-        "report": ["report_speed.py", str(base)],
-        "dask": ["dask_speed.py", "--corpus", str(base)],
+        "report": ["report_speed.py", str(corpus)],  # the folder holding base/ and the copies
+        "dask": ["dask_speed.py", "--corpus", str(corpus)],  # base and copies: the 4x corpus
     }
     for name, command in stage_benches.items():
         if not wanted(name):
