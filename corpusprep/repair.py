@@ -166,16 +166,24 @@ def _non_ascii_round(text: str, settings: ftfy.TextFixerConfig, changed: set[str
     return current
 
 
-def _repair_block(block: str, settings: ftfy.TextFixerConfig) -> tuple[str, set[str]] | None:
-    """ftfy's result on every line of ``block``, or None if some line needs ftfy itself."""
+def _repair_block(
+    block: str, settings: ftfy.TextFixerConfig, *, checked: bool = False
+) -> tuple[str, set[str]] | None:
+    """ftfy's result on every line of ``block``, or None if some line needs ftfy itself.
+
+    ``checked`` says the caller has already found that no line of ``block`` needs
+    full repair (:func:`needs_full_repair` is then skipped on the first round).
+    """
     if settings.fix_line_breaks or settings.remove_control_chars:
         return None  # steps the clean stage does itself; the fast path does not model them
     form = settings.normalization
     changed: set[str] = set()
     current = block
+    first = True
     while True:
-        if needs_full_repair(current, settings):
+        if not (first and checked) and needs_full_repair(current, settings):
             return None
+        first = False
         start = current
         # Every step but the terminal-escape one changes only non-ASCII
         # characters, and ASCII text is already normalized in every form.
@@ -251,7 +259,7 @@ def repair_quickly(text: str, settings: ftfy.TextFixerConfig) -> tuple[str, set[
     def flush() -> None:
         if not pending:
             return
-        block = _repair_block("".join(pending), settings)
+        block = _repair_block("".join(pending), settings, checked=True)
         if block is None:
             for segment in pending:
                 fixed, counters = _repair_segment_fully(segment, settings)
@@ -262,8 +270,10 @@ def repair_quickly(text: str, settings: ftfy.TextFixerConfig) -> tuple[str, set[
             changed.update(block[1])
         pending.clear()
 
+    html, encoding = settings.unescape_html, settings.fix_encoding
     for segment in split_segments(text):
-        if needs_full_repair(segment, settings):
+        # needs_full_repair on one segment (one line, with its \n if it has one), inlined.
+        if (html and "&" in segment) or (encoding and not segment.isascii() and is_bad(segment)):
             flush()
             fixed, counters = _repair_segment_fully(segment, settings)
             pieces.append(fixed)
