@@ -192,10 +192,12 @@ def list_entries(root: str, include: tuple[str, ...], exclude: tuple[str, ...]) 
         if selected(""):
             found.append(_Found(Entry(".", root, "saved_dataset"), root_real, False))
         return [item.entry for item in found]
-    folders: list[tuple[str, str]] = [(root, "")]
+    # Each folder with its real path: folders are entered only through real (not linked) folders,
+    # so a regular file's real path is its folder's real path and its name, with no realpath call.
+    folders: list[tuple[str, str, str]] = [(root, "", root_real)]
     first = True
     while folders:
-        folder, prefix = folders.pop()
+        folder, prefix, folder_real = folders.pop()
         try:
             with os.scandir(folder) as listing:
                 children = sorted(listing, key=lambda child: child.name)
@@ -223,9 +225,10 @@ def list_entries(root: str, include: tuple[str, ...], exclude: tuple[str, ...]) 
                         entry = Entry(shown, child.path, "saved_dataset")
                         found.append(_Found(entry, os.path.realpath(child.path), False))
                 else:
-                    folders.append((child.path, shown + "/"))
+                    folders.append((child.path, shown + "/", os.path.join(folder_real, child.name)))
             elif selected(shown):
-                found.append(_regular_or_not(child.path, shown, os.path.realpath(child.path), False))
+                real = os.path.join(folder_real, child.name)
+                found.append(_regular_or_not(child.path, shown, real, False))
     return _once_per_file(found)
 
 
