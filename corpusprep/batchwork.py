@@ -41,7 +41,6 @@ __all__ = [
     "StageTask",
     "bounded_slices",
     "encode_staged",
-    "encode_texts",
     "hex_pair",
     "prepare_batch",
     "stage_inputs",
@@ -106,11 +105,6 @@ def bounded_slices(batch: pa.RecordBatch, limit: int) -> Iterator[pa.RecordBatch
         total += length
     if start < batch.num_rows:
         yield batch.slice(start, batch.num_rows - start)
-
-
-def encode_texts(tokenizer: Tokenizer, texts: list[str]) -> list[np.ndarray]:
-    """Token ids of ``texts`` (second pass)."""
-    return tokenizer.encode_batch(texts)
 
 
 def hex_pair(pair: np.ndarray) -> str:

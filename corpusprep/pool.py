@@ -30,7 +30,7 @@ In = TypeVar("In")
 Out = TypeVar("Out")
 
 #: ``mapper(function, items)`` yields ``function(item)`` for every item, in input order.
-#: The local engine is :func:`local_mapper`; another engine (a cluster) plugs in the same way.
+#: The local engine is :func:`local_engine` (one pool a run); a cluster engine plugs in the same way.
 Mapper = Callable[[Callable[[Any], Any], Iterable[Any]], Iterator[Any]]
 
 
