@@ -39,18 +39,16 @@ import itertools
 import math
 from collections.abc import Callable
 from dataclasses import dataclass
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pyarrow as pa
 
-from corpusprep.errors import IntegrityError
 from corpusprep.exact import first_occurrences
 from corpusprep.lsh import band_codes, check_banding, codes_to_pairs, nonempty_rows
 from corpusprep.minhash import pair_similarity
 from corpusprep.near import NearConfig, document_shingles, exact_similarity
-from corpusprep.pool import Mapper
+from corpusprep.pool import Mapper, visible_path
 
 __all__ = [
     "MappedPairWork",
@@ -68,17 +66,6 @@ PAIRS_PER_TASK = 1 << 17
 EXACT_PAIRS_PER_TASK = 1 << 9
 #: Band tasks per map: enough to keep every worker busy, few enough that each reads the store rarely.
 BAND_TASKS = 8
-
-
-def visible_path(path: str) -> Path:
-    """``path`` as a :class:`Path`, or a clear error when this process (a worker) cannot see it."""
-    found = Path(path)
-    if not found.exists():
-        raise IntegrityError(
-            f"{path}: this worker cannot see the run's work folder; with a remote cluster the output "
-            "folder must be on storage that every worker mounts at the same path"
-        )
-    return found
 
 
 @dataclass(frozen=True, slots=True)

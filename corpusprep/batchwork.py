@@ -15,7 +15,7 @@ from __future__ import annotations
 import contextlib
 import os
 from collections import Counter
-from collections.abc import Iterator
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -28,6 +28,7 @@ from corpusprep.clean import CleanConfig, clean_batch
 from corpusprep.errors import IntegrityError
 from corpusprep.exact import ExactConfig, exact_keys
 from corpusprep.near import NearConfig, signature_batch
+from corpusprep.pool import visible_path
 from corpusprep.read import InputFile, ReadConfig, read_entries
 from corpusprep.schema import DOC_SCHEMA, KEPT, REJECTED, STATUSES
 from corpusprep.split import SPLITS
@@ -42,6 +43,7 @@ __all__ = [
     "bounded_slices",
     "encode_staged",
     "hex_pair",
+    "merge_parts",
     "prepare_batch",
     "stage_inputs",
 ]
@@ -165,24 +167,71 @@ class StagePart:
     permutations: int
 
 
-def stage_inputs(task: StageTask) -> StagePart:
-    """Read, clean, hash and sign ``task.entries``; write the part files; return the per-row results."""
-    folder = Path(task.folder)
-    if not folder.is_dir():
-        raise IntegrityError(
-            f"{folder}: this worker cannot see the run's work folder; with a remote cluster the output "
-            "folder must be on storage that every worker mounts at the same path"
-        )
-    inputs: list[InputFile] = []
-    statuses: list[np.ndarray] = []
-    text_hashes: list[np.ndarray] = []
-    keys: list[np.ndarray] = []
-    groups: list[str | None] = []
+def merge_parts(parts: Sequence[StagePart], *, index: int = 0, inputs: Sequence[InputFile] = ()) -> StagePart:
+    """The results of consecutive ``parts`` as one, rows in order (``inputs`` go before theirs)."""
     counts: dict[str, Counter[str]] = {"clean": Counter(), "near": Counter()}
     reasons: Counter[str] = Counter()
     examples: list[str] = []
-    signature_dtype: str | None = None
-    permutations = rows = 0
+    signed = [part for part in parts if part.signature_dtype is not None]
+    for part in parts:
+        for name, counter in part.counts.items():
+            counts[name].update(counter)
+        reasons.update(part.reasons)
+        examples.extend(part.examples[: max(0, _EXAMPLES - len(examples))])
+    return StagePart(
+        index=index,
+        inputs=[*inputs, *(item for part in parts for item in part.inputs)],
+        rows=sum(part.rows for part in parts),
+        status=np.concatenate([part.status for part in parts]) if parts else np.zeros(0, dtype=np.int8),
+        text_hashes=(
+            np.concatenate([part.text_hashes for part in parts]) if parts else np.zeros((0, 2), np.uint64)
+        ),
+        exact_keys=np.concatenate([part.exact_keys for part in parts])
+        if parts
+        else np.zeros((0, 2), np.uint64),
+        groups=[group for part in parts for group in part.groups],
+        counts=counts,
+        reasons=reasons,
+        examples=examples,
+        signature_dtype=signed[-1].signature_dtype if signed else None,
+        permutations=signed[-1].permutations if signed else 0,
+    )
+
+
+def _prepared_part(prepared: PreparedBatch) -> StagePart:
+    """The per-row results of one prepared batch, as a part (inputs empty)."""
+    batch = prepared.batch
+    status = batch.column("status").to_pylist()
+    reasons: Counter[str] = Counter()
+    examples: list[str] = []
+    columns = (batch.column(name).to_pylist() for name in ("reason", "source", "line"))
+    for state, reason, source, line in zip(status, *columns, strict=True):
+        if state == REJECTED:
+            reasons[str(reason).split(":")[0]] += 1
+            if len(examples) < _EXAMPLES:
+                examples.append(f"{source}:{line if line is not None else '-'}: {reason}")
+    signatures = prepared.signatures
+    return StagePart(
+        index=0,
+        inputs=[],
+        rows=batch.num_rows,
+        status=np.array([STATUS_CODE[str(state)] for state in status], dtype=np.int8),
+        text_hashes=prepared.text_hashes,
+        exact_keys=prepared.exact_keys,
+        groups=batch.column("group").to_pylist(),
+        counts=prepared.counts,
+        reasons=reasons,
+        examples=examples,
+        signature_dtype=None if signatures is None else signatures.dtype.str,
+        permutations=0 if signatures is None else signatures.shape[1],
+    )
+
+
+def stage_inputs(task: StageTask) -> StagePart:
+    """Read, clean, hash and sign ``task.entries``; write the part files; return the per-row results."""
+    visible_path(task.folder)
+    inputs: list[InputFile] = []
+    pieces: list[StagePart] = []
     documents, signatures = task.documents_file, task.signatures_file
     temporary = [path.with_name(f".{path.name}.partial") for path in (documents, signatures)]
     items: Iterator[pa.RecordBatch | InputFile] = (
@@ -201,47 +250,13 @@ def stage_inputs(task: StageTask) -> StagePart:
                 continue
             for piece in bounded_slices(item, task.batch_text_bytes):
                 prepared = prepare_batch(piece, task.clean, task.exact, task.near)
-                batch = prepared.batch
-                writer.write_batch(batch)
-                status = batch.column("status").to_pylist()
-                statuses.append(np.array([STATUS_CODE[str(state)] for state in status], dtype=np.int8))
-                text_hashes.append(prepared.text_hashes)
-                keys.append(prepared.exact_keys)
-                groups.extend(batch.column("group").to_pylist())
-                for name, counter in prepared.counts.items():
-                    counts[name].update(counter)
+                writer.write_batch(prepared.batch)
                 if prepared.signatures is not None:
-                    signature_dtype = prepared.signatures.dtype.str
-                    permutations = prepared.signatures.shape[1]
                     signature_sink.write(np.ascontiguousarray(prepared.signatures).tobytes())
-                for state, reason, source, line in zip(
-                    status,
-                    batch.column("reason").to_pylist(),
-                    batch.column("source").to_pylist(),
-                    batch.column("line").to_pylist(),
-                    strict=True,
-                ):
-                    if state == REJECTED:
-                        reasons[str(reason).split(":")[0]] += 1
-                        if len(examples) < _EXAMPLES:
-                            examples.append(f"{source}:{line if line is not None else '-'}: {reason}")
-                rows += batch.num_rows
+                pieces.append(_prepared_part(prepared))
     for path, final in zip(temporary, (documents, signatures), strict=True):
         os.replace(path, final)
-    return StagePart(
-        index=task.index,
-        inputs=inputs,
-        rows=rows,
-        status=np.concatenate(statuses) if statuses else np.zeros(0, dtype=np.int8),
-        text_hashes=np.concatenate(text_hashes) if text_hashes else np.zeros((0, 2), dtype=np.uint64),
-        exact_keys=np.concatenate(keys) if keys else np.zeros((0, 2), dtype=np.uint64),
-        groups=groups,
-        counts=counts,
-        reasons=reasons,
-        examples=examples,
-        signature_dtype=signature_dtype,
-        permutations=permutations,
-    )
+    return merge_parts(pieces, index=task.index, inputs=inputs)
 
 
 @dataclass(frozen=True, slots=True, kw_only=True)
@@ -267,12 +282,8 @@ def encode_staged(tokenizer: Tokenizer, task: EncodeTask) -> np.ndarray:
     ``tokens-{split}-{index}.raw`` in row order, as ``task.dtype``; the result
     is each row's token count (-1 for rows without a split).
     """
-    folder = Path(task.folder)
-    if not folder.is_dir() or not Path(task.documents).is_file():
-        raise IntegrityError(
-            f"{folder}: this worker cannot see the run's work folder; with a remote cluster the output "
-            "folder must be on storage that every worker mounts at the same path"
-        )
+    visible_path(task.folder)
+    visible_path(task.documents)
     dtype = np.dtype(task.dtype)
     lengths = np.full(task.splits.size, -1, dtype=np.int64)
     temporary = {split: task.part(split).with_name(f".{task.part(split).name}.partial") for split in SPLITS}

@@ -37,7 +37,7 @@ import numpy as np
 from corpusprep.config import setting
 from corpusprep.errors import DefinitionError, IntegrityError
 from corpusprep.hashing import hash_bytes, keyed_hash64
-from corpusprep.pool import Mapper
+from corpusprep.pool import Mapper, visible_path
 from corpusprep.shards import ShardInfo, npy_header, read_shard, shard_dtype, shard_name, write_shard
 
 __all__ = [
@@ -204,6 +204,18 @@ def _window_view(stream: np.ndarray, count: int, length: int) -> np.ndarray:
     return np.lib.stride_tricks.sliding_window_view(stream[: count * length + 1], length + 1)[::length]
 
 
+def _checked_setup(split: str, dtype: np.dtype, *, eod_id: int, pad_id: int, bod_id: int | None) -> np.dtype:
+    """The shard dtype; refuses a split name unusable in file names and special ids that do not fit."""
+    dtype = shard_dtype(dtype)
+    shard_name(split, 0)
+    top = int(np.iinfo(dtype).max)
+    specials = {"eod_id": eod_id, "pad_id": pad_id} | ({} if bod_id is None else {"bod_id": bod_id})
+    for key, value in specials.items():
+        if not 0 <= value <= top:
+            raise IntegrityError(f"{key} {value} does not fit in {dtype}")
+    return dtype
+
+
 def pack_split(
     split: str,
     documents: Iterable[np.ndarray],
@@ -221,13 +233,7 @@ def pack_split(
     without special tokens; it is consumed once and the arrays are not
     modified. Shards are named ``{split}-{index:05d}.npy`` from index 0.
     """
-    dtype = shard_dtype(dtype)
-    shard_name(split, 0)  # refuses a split name that is unusable in file names before any work
-    top = int(np.iinfo(dtype).max)
-    specials = {"eod_id": eod_id, "pad_id": pad_id} | ({} if bod_id is None else {"bod_id": bod_id})
-    for key, value in specials.items():
-        if not 0 <= value <= top:
-            raise IntegrityError(f"{key} {value} does not fit in {dtype}")
+    dtype = _checked_setup(split, dtype, eod_id=eod_id, pad_id=pad_id, bod_id=bod_id)
     length, per_shard = config.length, config.windows_per_shard
     capacity = per_shard * length + 1  # one full shard of windows spans this many stream tokens
     buffer = np.empty(capacity, dtype=dtype)
@@ -393,12 +399,7 @@ def _stream_slice(task: _ShardTask, begin: int, end: int) -> np.ndarray:
 
 def _pack_shard(task: _ShardTask) -> tuple[ShardInfo | None, dict[str, Any] | None, int, int, int]:
     """Task: write one shard (and its document starts); ``(info, starts entry, windows, pads, dropped)``."""
-    length, folder = task.length, Path(task.folder)
-    if not folder.is_dir():
-        raise IntegrityError(
-            f"{folder}: this worker cannot see the output's shard folder; with a remote cluster the output "
-            "folder must be on storage that every worker mounts at the same path"
-        )
+    length, folder = task.length, visible_path(task.folder, "output's shard folder")
     carry_needed = task.document_starts and task.begin > 0
     stream = _stream_slice(task, task.begin - carry_needed, task.end)
     carry = int(stream[0]) if carry_needed else task.eod_id
@@ -456,13 +457,7 @@ def pack_split_mapped(
     Returns the result and the starts entries by shard name (as
     :func:`write_document_starts`).
     """
-    dtype = shard_dtype(dtype)
-    shard_name(split, 0)
-    top = int(np.iinfo(dtype).max)
-    specials = {"eod_id": eod_id, "pad_id": pad_id} | ({} if bod_id is None else {"bod_id": bod_id})
-    for key, value in specials.items():
-        if not 0 <= value <= top:
-            raise IntegrityError(f"{key} {value} does not fit in {dtype}")
+    dtype = _checked_setup(split, dtype, eod_id=eod_id, pad_id=pad_id, bod_id=bod_id)
     length, per_shard = config.length, config.windows_per_shard
     span = per_shard * length
     head = 0 if bod_id is None else 1

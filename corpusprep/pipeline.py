@@ -37,10 +37,12 @@ from corpusprep import __version__
 from corpusprep.barriers import MappedPairWork, SignatureStore, first_occurrences_mapped
 from corpusprep.batchwork import (
     EncodeTask,
+    StagePart,
     StageTask,
     bounded_slices,
     encode_staged,
     hex_pair,
+    merge_parts,
     stage_inputs,
 )
 from corpusprep.checkpoint import Checkpoints, input_fingerprint, step_keys
@@ -207,37 +209,25 @@ class _Run:
                     tasks.append(stage(index=len(tasks), entries=group))
                 yield tasks[-1]
 
-        statuses: list[np.ndarray] = []
-        text_hashes: list[np.ndarray] = []
-        keys: list[np.ndarray] = []
-        groups: list[str | None] = []
-        counts: dict[str, Counter[str]] = {"clean": Counter(), "near": Counter()}
-        reasons: Counter[str] = Counter()
-        examples: list[str] = []
-        self.has_signatures = False
+        results: list[StagePart] = []
         rows = 0
         for part in self.mapper(stage_inputs, drawn()):
-            self.inputs.extend(part.inputs)
-            statuses.append(part.status)
-            text_hashes.append(part.text_hashes)
-            keys.append(part.exact_keys)
-            groups.extend(part.groups)
-            for name, counter in part.counts.items():
-                counts[name].update(counter)
-            reasons.update(part.reasons)
-            examples.extend(part.examples[: max(0, 5 - len(examples))])
-            if part.signature_dtype is not None:
-                self.signature_dtype = np.dtype(part.signature_dtype)
-                self.permutations = part.permutations
-                self.has_signatures = True
+            results.append(part)
             rows += part.rows
             self.progress("read", rows, None)
         self._join_parts(tasks)
-        self.rows = rows
-        self.status = np.concatenate(statuses) if statuses else np.zeros(0, dtype=np.int8)
-        self.text_hashes = np.concatenate(text_hashes) if text_hashes else np.zeros((0, 2), dtype=np.uint64)
-        self.keys = np.concatenate(keys) if keys else np.zeros((0, 2), dtype=np.uint64)
-        self.groups = groups
+        whole = merge_parts(results)
+        self.inputs.extend(whole.inputs)
+        self.rows = whole.rows
+        self.status = whole.status
+        self.text_hashes = whole.text_hashes
+        self.keys = whole.exact_keys
+        self.groups = whole.groups
+        self.has_signatures = whole.signature_dtype is not None
+        if whole.signature_dtype is not None:
+            self.signature_dtype = np.dtype(whole.signature_dtype)
+            self.permutations = whole.permutations
+        counts, reasons, examples = whole.counts, whole.reasons, whole.examples
         rejected = int(np.count_nonzero(self.status == _STATUS_CODE[REJECTED]))
         formats = Counter(item.format for item in self.inputs)
         encodings = Counter(item.encoding for item in self.inputs if item.encoding)

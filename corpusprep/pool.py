@@ -20,11 +20,12 @@ from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import Executor, Future, ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
+from pathlib import Path
 from typing import Any, TypeVar
 
-from corpusprep.errors import WorkerDiedError
+from corpusprep.errors import IntegrityError, WorkerDiedError
 
-__all__ = ["Mapper", "local_engine", "local_mapper", "ordered_map"]
+__all__ = ["Mapper", "local_engine", "local_mapper", "ordered_map", "visible_path"]
 
 In = TypeVar("In")
 Out = TypeVar("Out")
@@ -102,3 +103,18 @@ def local_engine(workers: int) -> Iterator[Mapper]:
             return _executor_map(executor, function, items, workers)
 
         yield mapper
+
+
+def visible_path(path: str | Path, what: str = "run's work folder") -> Path:
+    """``path`` as a :class:`Path`, or a clear error when this process (a worker) cannot see it.
+
+    Tasks read and write the run's folders by path; on a remote cluster those must
+    be on storage that every worker mounts at the same path.
+    """
+    found = Path(path)
+    if not found.exists():
+        raise IntegrityError(
+            f"{path}: this worker cannot see the {what}; with a remote cluster the output "
+            "folder must be on storage that every worker mounts at the same path"
+        )
+    return found
